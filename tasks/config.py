@@ -1,0 +1,283 @@
+"""tarewise configuration: one TOML file, validated once at the edge, passed down typed.
+
+Every key is typed, ranged and documented here; ``configs/example.toml`` shows each with its default.
+An unknown key or a bad value raises :class:`ConfigError` naming the key path (``model.dim``) and what
+is allowed. Nothing below imports Prefect, so the engine can take these objects directly.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import tomllib
+from pathlib import Path
+from typing import Literal
+
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
+
+
+class ConfigError(ValueError):
+    """A config file or value is wrong; the message names the key and what is allowed."""
+
+
+class _Section(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+class PathsConfig(_Section):
+    logs: str = Field("sample_parquet", description="Where daily logs are read: <logs>/dt=YYYY-MM-DD/*.parquet. "
+                      "Local path or pyarrow.fs URI. Overridden by --logs / TAREWISE_LOGS.")
+    workspace: str = Field(".tarewise", description="Where tarewise keeps all its state. "
+                           "Overridden by --workspace / TAREWISE_WORKSPACE.")
+
+
+class ColumnsConfig(_Section):
+    """Names of the input columns in the logs, mapped to tarewise's own names."""
+    user_id: str = "user_id"
+    item_id: str = "item_id"
+    rating: str = "rating"
+    event_time: str = "event_time"
+    source: str = "source"
+
+
+class InputConfig(_Section):
+    columns: ColumnsConfig = ColumnsConfig()
+    organic_label: str = Field("organic", min_length=1, description="`source` value of organic ratings.")
+    probe_label: str = Field("probe", min_length=1, description="`source` value of probe ratings.")
+    missing_partition: Literal["error", "skip"] = Field(
+        "error", description="What a run does when its date's partition is absent.")
+    max_rejected_share: float = Field(0.05, ge=0.0, le=1.0,
+                                      description="Fail the run before training when more rows than this are rejected.")
+    max_future_seconds: int = Field(86_400, ge=0, description="Rows whose event_time lies further than this past the "
+                                    "end of the run date are quarantined (clock skew allowance).")
+    max_id_length: int = Field(256, ge=1, le=65_536, description="Longer ids are quarantined.")
+
+    @model_validator(mode="after")
+    def _labels_differ(self) -> "InputConfig":
+        if self.organic_label == self.probe_label:
+            raise ValueError("input.organic_label and input.probe_label must differ")
+        return self
+
+
+class ScaleConfig(_Section):
+    min: float = Field(1.0, description="Lowest rating on the scale.")
+    max: float = Field(5.0, description="Highest rating on the scale.")
+    step: float = Field(1.0, ge=0.0, description="Rating step (1 for whole stars); 0 means continuous.")
+
+    @model_validator(mode="after")
+    def _ordered(self) -> "ScaleConfig":
+        if not self.min < self.max:
+            raise ValueError(f"scale.min ({self.min}) must be below scale.max ({self.max})")
+        if self.step > 0:
+            n = (self.max - self.min) / self.step
+            if abs(n - round(n)) > 1e-9:
+                raise ValueError("scale.step must divide scale.max - scale.min")
+        return self
+
+    @property
+    def levels(self) -> list[float]:
+        """Allowed rating values when a step is set (else the two ends)."""
+        if self.step <= 0:
+            return [self.min, self.max]
+        n = int(round((self.max - self.min) / self.step))
+        return [self.min + k * self.step for k in range(n + 1)]
+
+
+class WindowConfig(_Section):
+    days: int = Field(30, ge=1, le=3650, description="Training uses the stored ratings of this many days up to the run date.")
+
+
+class ModelConfig(_Section):
+    kind: Literal["biased_mf"] = Field("biased_mf", description="Factorisation model; biased MF is the only one today.")
+    dim: int = Field(16, ge=1, le=1024, description="Number of latent factors.")
+    learning_rate: float = Field(0.02, gt=0.0, le=1.0, description="Adam step size.")
+    weight_decay: float = Field(0.02, ge=0.0, description="L2 penalty on the factors and biases of each batch "
+                                "(per-example, as in Koren, Bell & Volinsky 2009).")
+    batch_size: int = Field(1024, ge=1, description="Ratings per mini-batch.")
+    max_epochs: int = Field(40, ge=1, le=10_000, description="Epoch bound for a cold start.")
+    finetune_epochs: int = Field(8, ge=1, le=10_000, description="Epoch bound when warm-starting from a checkpoint.")
+    patience: int = Field(4, ge=1, description="Early stopping: epochs without validation improvement.")
+    init_scale: float = Field(0.05, gt=0.0, le=1.0, description="Std of the random init of new factor rows.")
+    seed: int = Field(7, ge=0, description="Seed of every random draw (init, shuffles, reference sampling).")
+    threads: int = Field(1, ge=1, le=256, description="torch intra-op threads; part of the reproducibility contract.")
+
+
+DebiasMethod = Literal[
+    "plain",            # squared error on organic ratings only
+    "probe_upweight",   # organic + probe training split, probes up-weighted
+    "ips",              # inverse propensity weighted squared error (naive Bayes propensities)
+    "snips",            # self-normalised IPS
+    "recalibrate",      # plain model + monotone map fitted on probe training split
+    "calibrated",       # squared error + distribution-calibration term
+    "per_user",         # per-user shrunk correction learned from probes (issue: per-user debiasing)
+]
+
+
+class DebiasConfig(_Section):
+    method: DebiasMethod = Field("calibrated", description="Training objective of the candidate.")
+    calibration_weight: float = Field(1.0, ge=0.0, description="lambda: weight of the distribution-calibration term.")
+    profile_points: int = Field(10, ge=2, le=512, description="K: thresholds of the soft CDF (rule of thumb: 10+).")
+    profile_sharpness: float = Field(0.1, gt=0.0, description="s: sigmoid temperature of the soft CDF, in rating units.")
+    reference_temperature: float = Field(0.3, gt=0.0, description="tau: p_u = exp(-probe_error / tau).")
+    reference_p_min: float = Field(0.01, ge=0.0, le=1.0)
+    reference_p_max: float = Field(0.9, ge=0.0, le=1.0)
+    shrinkage: float = Field(5.0, ge=0.0, description="m: probe error = (n*mae + m*mean)/(n + m).")
+    profile_item_sample: int = Field(256, ge=0, description="Items sampled uniformly per user per step for the "
+                                     "soft CDF; 0 = all items (chunked under memory_budget_mb).")
+    users_per_step: int = Field(256, ge=1, description="Adjusted users per calibration step.")
+    memory_budget_mb: float = Field(256.0, gt=0.0, description="Cap on the users x items block held at once.")
+    probe_target_weight: float = Field(0.0, ge=0.0, description="Weight of the probe-rating ECDF as an extra "
+                                       "target of the calibration term (0 = reference users only).")
+    combine_with: Literal["none", "probe_upweight", "ips", "snips", "recalibrate"] = Field(
+        "none", description="Probe-based option applied together with the calibration term.")
+    probe_weight: float = Field(5.0, ge=0.0, description="Weight of a probe rating relative to an organic one "
+                                "(probe_upweight).")
+    propensity_clip: float = Field(0.05, gt=0.0, le=1.0, description="Lower clip of IPS propensities, relative "
+                                   "to the largest propensity.")
+    heldout_share: float = Field(0.3, gt=0.0, lt=1.0, description="Share of probe pairs held out for evaluation only "
+                                 "(chosen by a hash of user and item).")
+    per_user_prior: float = Field(3.0, ge=0.0, description="Shrinkage strength (pseudo-ratings) of per-user corrections.")
+
+    @model_validator(mode="after")
+    def _p_range(self) -> "DebiasConfig":
+        if self.reference_p_min > self.reference_p_max:
+            raise ValueError("debias.reference_p_min must not exceed debias.reference_p_max")
+        return self
+
+
+class EvaluateConfig(_Section):
+    bootstrap: int = Field(500, ge=0, le=100_000, description="Bootstrap resamples for confidence intervals.")
+    confidence: float = Field(0.9, gt=0.0, lt=1.0)
+    skew_margin: float = Field(0.5, ge=0.0, description="Stars: a user whose organic mean exceeds their probe "
+                               "mean by more than this is 'skewed up' (less: 'down'; else 'neutral').")
+
+
+class GateConfig(_Section):
+    tolerance_mae: float = Field(0.01, ge=0.0, description="Candidate may be at most this much worse than live.")
+    max_segment_regression: float = Field(0.05, ge=0.0, description="No segment's MAE may rise by more than this.")
+    min_heldout: int = Field(10, ge=0, description="Fewer held-out probe ratings than this: the gate holds.")
+
+
+class PublishConfig(_Section):
+    top_n: int = Field(20, ge=1, le=10_000, description="Predictions per user (unrated items, best first).")
+
+
+class RetentionConfig(_Section):
+    keep_versions: int = Field(10, ge=1, description="Keep this many newest versions (live and pinned always kept).")
+    pinned: tuple[str, ...] = Field((), description="Version ids never deleted.")
+    quarantine_days: int = Field(90, ge=1)
+    metrics_days: int = Field(365, ge=1)
+
+
+class RuntimeConfig(_Section):
+    timezone: str = Field("UTC", description="IANA zone; 'yesterday' and the schedule use it.")
+    schedule: str = Field("30 2 * * *", description="Cron for the nightly deployment.")
+    shadow: bool = Field(True, description="Train a plain shadow model beside the candidate.")
+    runner: Literal["thread", "dask"] = Field("thread", description="Prefect task runner.")
+    dask_address: str = Field("", description="Existing Dask scheduler address; empty = local cluster.")
+    flow_timeout_seconds: int = Field(6 * 3600, ge=60)
+    io_retries: int = Field(2, ge=0, le=20)
+    lock_stale_seconds: int = Field(4 * 3600, ge=60, description="A store lock older than this with a dead "
+                                    "holder is taken over.")
+    min_ratings_to_train: int = Field(1, ge=1, description="Skip training on a date with fewer ratings in the window.")
+
+
+class DriftConfig(_Section):
+    baseline_nights: int = Field(14, ge=3, le=365, description="Trailing nights forming the baseline band.")
+    min_baseline_nights: int = Field(5, ge=2, description="No skew alerts before this many nights of history.")
+    mad_k: float = Field(4.0, gt=0.0, description="Band = median +- k * 1.4826 * MAD.")
+    cooldown_nights: int = Field(3, ge=0, description="Same-kind alerts within this many nights fold into one.")
+    min_probe_coverage: float = Field(0.005, ge=0.0, le=1.0, description="Alert when the night's share of active "
+                                      "users with a probe rating falls below this.")
+    max_quarantine_share: float = Field(0.02, ge=0.0, le=1.0, description="Alert above this rejected share.")
+
+
+class AlertsConfig(_Section):
+    webhook_url_env: str = Field("TAREWISE_WEBHOOK_URL", description="Environment variable holding the webhook URL "
+                                 "(secrets never live in config files).")
+    prefect_blocks: tuple[str, ...] = Field((), description="Names of Prefect notification blocks to notify.")
+    retries: int = Field(3, ge=0, le=20)
+    retry_delay_seconds: float = Field(1.0, ge=0.0)
+    timeout_seconds: float = Field(10.0, gt=0.0)
+
+
+class Config(_Section):
+    paths: PathsConfig = PathsConfig()
+    input: InputConfig = InputConfig()
+    scale: ScaleConfig = ScaleConfig()
+    window: WindowConfig = WindowConfig()
+    model: ModelConfig = ModelConfig()
+    debias: DebiasConfig = DebiasConfig()
+    evaluate: EvaluateConfig = EvaluateConfig()
+    gate: GateConfig = GateConfig()
+    publish: PublishConfig = PublishConfig()
+    retention: RetentionConfig = RetentionConfig()
+    runtime: RuntimeConfig = RuntimeConfig()
+    drift: DriftConfig = DriftConfig()
+    alerts: AlertsConfig = AlertsConfig()
+
+    def with_overrides(self, logs: str | None = None, workspace: str | None = None) -> "Config":
+        """Copy with the two paths replaced (CLI flags win over env vars, which win over the file)."""
+        paths = self.paths.model_copy(update={k: v for k, v in {"logs": logs, "workspace": workspace}.items() if v})
+        return self.model_copy(update={"paths": paths})
+
+    def updated(self, dotted: dict[str, object]) -> "Config":
+        """Copy with ``{"debias.calibration_weight": 2.0, ...}`` applied and re-validated (used by sweeps)."""
+        raw = self.model_dump()
+        for key, value in dotted.items():
+            node = raw
+            parts = key.split(".")
+            for p in parts[:-1]:
+                if p not in node or not isinstance(node[p], dict):
+                    raise ConfigError(f"unknown config key '{key}'")
+                node = node[p]
+            if parts[-1] not in node:
+                raise ConfigError(f"unknown config key '{key}'")
+            node[parts[-1]] = value
+        return parse_config(raw, source="<override>")
+
+    def digest(self) -> str:
+        """Stable short hash of every setting except the two paths (which vary by environment)."""
+        raw = self.model_dump(mode="json")
+        raw.pop("paths", None)
+        return hashlib.sha256(json.dumps(raw, sort_keys=True).encode()).hexdigest()[:16]
+
+
+def _format_error(err: ValidationError, source: str) -> str:
+    lines = [f"invalid config in {source}:"]
+    for e in err.errors():
+        key = ".".join(str(p) for p in e["loc"]) or "<top level>"
+        if e["type"] == "extra_forbidden":
+            lines.append(f"  {key}: unknown key (check spelling; see configs/example.toml)")
+        else:
+            lines.append(f"  {key}: {e['msg']} (got {e.get('input')!r})")
+    return "\n".join(lines)
+
+
+def parse_config(raw: dict, source: str = "<dict>") -> Config:
+    try:
+        return Config.model_validate(raw)
+    except ValidationError as err:
+        raise ConfigError(_format_error(err, source)) from None
+
+
+def load_config(path: str | Path | None = None, logs: str | None = None, workspace: str | None = None) -> Config:
+    """Read and validate a TOML config (defaults when ``path`` is None); apply path overrides.
+
+    Precedence for the two paths: explicit argument > TAREWISE_LOGS / TAREWISE_WORKSPACE > file.
+    """
+    raw: dict = {}
+    source = "<defaults>"
+    if path is not None:
+        p = Path(path)
+        source = str(p)
+        try:
+            raw = tomllib.loads(p.read_text(encoding="utf-8"))
+        except FileNotFoundError:
+            raise ConfigError(f"config file not found: {p}") from None
+        except tomllib.TOMLDecodeError as exc:
+            raise ConfigError(f"config file {p} is not valid TOML: {exc}") from None
+    cfg = parse_config(raw, source)
+    return cfg.with_overrides(logs=logs or os.environ.get("TAREWISE_LOGS"),
+                              workspace=workspace or os.environ.get("TAREWISE_WORKSPACE"))

@@ -1,0 +1,50 @@
+"""Stable string-id to contiguous-int maps, persisted with the model.
+
+New ids are appended (sorted, so the result does not depend on row order), never renumbered: index ``k``
+means the same user or item on every night a checkpoint is carried forward.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+
+class IdMap:
+    """Bijection between string ids and ``0..n-1``."""
+
+    def __init__(self, ids: list[str] | pd.Index | None = None) -> None:
+        index = pd.Index([] if ids is None else list(ids), dtype=object)
+        if index.has_duplicates:
+            raise ValueError("IdMap: duplicate ids")
+        self._index = index
+
+    def __len__(self) -> int:
+        return len(self._index)
+
+    @property
+    def ids(self) -> pd.Index:
+        return self._index
+
+    def extend(self, ids: pd.Series | np.ndarray | list[str]) -> int:
+        """Append ids not seen before (sorted); return how many were added."""
+        unique = pd.unique(pd.Series(ids, dtype=object))
+        new = sorted(set(unique) - set(self._index)) if len(self._index) else sorted(set(unique))
+        if new:
+            self._index = self._index.append(pd.Index(new, dtype=object))
+        return len(new)
+
+    def lookup(self, ids: pd.Series | np.ndarray | list[str]) -> np.ndarray:
+        """Indices (int64) of ``ids``; ``-1`` for ids not in the map."""
+        return self._index.get_indexer(pd.Index(pd.Series(ids, dtype=object))).astype(np.int64)
+
+    def save(self, path: Path) -> None:
+        pq.write_table(pa.table({"id": pa.array(list(self._index), pa.string())}), path)
+
+    @classmethod
+    def load(cls, path: Path) -> "IdMap":
+        return cls(pq.read_table(path).column("id").to_pylist())

@@ -1,0 +1,115 @@
+"""Factorisation models behind one interface.
+
+:class:`Factoriser` is what the trainer needs: predict raw scores for (user, item) index pairs, a
+per-example regulariser, and growth of the id tables on warm start. :class:`BiasedMF` is the biased
+matrix factorisation of Koren, Bell & Volinsky (2009, IEEE Computer):
+``rhat_ui = mu + b_u + b_i + <p_u, q_i>``. A factorisation machine with side features can be added as
+another subclass without touching the trainer.
+"""
+
+from __future__ import annotations
+
+import torch
+from torch import nn
+
+
+class Factoriser(nn.Module):
+    """Interface. Embeddings are sparse so a step touches only the rows in its batch."""
+
+    kind: str = "abstract"
+
+    def forward(self, users: torch.Tensor, items: torch.Tensor) -> torch.Tensor:  # [B], [B] -> [B]
+        raise NotImplementedError
+
+    def predict_block(self, users: torch.Tensor, items: torch.Tensor) -> torch.Tensor:  # [U],[I] -> [U,I]
+        raise NotImplementedError
+
+    def predict_sampled(self, users: torch.Tensor, items: torch.Tensor) -> torch.Tensor:  # [U],[U,S] -> [U,S]
+        raise NotImplementedError
+
+    def regulariser(self, users: torch.Tensor, items: torch.Tensor) -> torch.Tensor:  # -> [B]
+        raise NotImplementedError
+
+    def grow(self, n_users: int, n_items: int, init_scale: float, generator: torch.Generator) -> None:
+        raise NotImplementedError
+
+    def hyper(self) -> dict:
+        raise NotImplementedError
+
+
+def _embedding(rows: int, cols: int) -> nn.Embedding:
+    return nn.Embedding(rows, cols, sparse=True)
+
+
+class BiasedMF(Factoriser):
+    kind = "biased_mf"
+
+    def __init__(self, n_users: int, n_items: int, dim: int, global_mean: float, init_scale: float,
+                 generator: torch.Generator) -> None:
+        super().__init__()
+        self.dim = dim
+        self.register_buffer("global_mean", torch.tensor(float(global_mean)))
+        self.user_factors = _embedding(n_users, dim)
+        self.item_factors = _embedding(n_items, dim)
+        self.user_bias = _embedding(n_users, 1)
+        self.item_bias = _embedding(n_items, 1)
+        with torch.no_grad():
+            self.user_factors.weight.normal_(0.0, init_scale, generator=generator)
+            self.item_factors.weight.normal_(0.0, init_scale, generator=generator)
+            self.user_bias.weight.zero_()
+            self.item_bias.weight.zero_()
+
+    @property
+    def n_users(self) -> int:
+        return self.user_factors.num_embeddings
+
+    @property
+    def n_items(self) -> int:
+        return self.item_factors.num_embeddings
+
+    def forward(self, users, items):
+        p, q = self.user_factors(users), self.item_factors(items)
+        return (self.global_mean + self.user_bias(users).squeeze(-1) + self.item_bias(items).squeeze(-1)
+                + (p * q).sum(-1))
+
+    def predict_block(self, users, items):
+        p, q = self.user_factors(users), self.item_factors(items)
+        return (self.global_mean + self.user_bias(users) + self.item_bias(items).view(1, -1) + p @ q.T)
+
+    def predict_sampled(self, users, items):
+        p = self.user_factors(users)                         # [U, d]
+        q = self.item_factors(items)                         # [U, S, d]
+        return (self.global_mean + self.user_bias(users) + self.item_bias(items).squeeze(-1)
+                + torch.einsum("ud,usd->us", p, q))
+
+    def regulariser(self, users, items):
+        return ((self.user_factors(users) ** 2).sum(-1) + (self.item_factors(items) ** 2).sum(-1)
+                + self.user_bias(users).squeeze(-1) ** 2 + self.item_bias(items).squeeze(-1) ** 2)
+
+    def grow(self, n_users, n_items, init_scale, generator):
+        """Append rows for new users/items: small random factors, zero biases. Old rows untouched."""
+        def grown(emb: nn.Embedding, rows: int, random: bool) -> nn.Embedding:
+            extra = rows - emb.num_embeddings
+            if extra <= 0:
+                return emb
+            new = _embedding(rows, emb.embedding_dim)
+            with torch.no_grad():
+                new.weight[: emb.num_embeddings] = emb.weight
+                tail = new.weight[emb.num_embeddings:]
+                tail.normal_(0.0, init_scale, generator=generator) if random else tail.zero_()
+            return new
+        self.user_factors = grown(self.user_factors, n_users, True)
+        self.item_factors = grown(self.item_factors, n_items, True)
+        self.user_bias = grown(self.user_bias, n_users, False)
+        self.item_bias = grown(self.item_bias, n_items, False)
+
+    def hyper(self) -> dict:
+        return {"kind": self.kind, "dim": self.dim, "n_users": self.n_users, "n_items": self.n_items,
+                "global_mean": float(self.global_mean)}
+
+
+def build_model(hyper: dict, generator: torch.Generator, init_scale: float = 0.05) -> Factoriser:
+    if hyper["kind"] == BiasedMF.kind:
+        return BiasedMF(hyper["n_users"], hyper["n_items"], hyper["dim"], hyper["global_mean"], init_scale,
+                        generator)
+    raise ValueError(f"unknown model kind {hyper['kind']!r}")

@@ -1,0 +1,68 @@
+"""Rating profiles: a differentiable soft CDF of a user's predicted ratings over items.
+
+``F_u[k] = mean_i sigmoid((t_k - rhat_ui) / s)`` with ``t_k`` = ``profile_points`` thresholds evenly spaced
+over the rating scale and ``s`` = ``profile_sharpness`` (rating units). As ``s -> 0`` this tends to the
+empirical CDF ``#{i : rhat_ui <= t_k} / n_items``.
+
+(Written with ``rhat - t`` instead of ``t - rhat`` the same expression is the survival function
+``1 - F``; distances between profiles, which is all the calibration term uses, are identical.)
+"""
+
+from __future__ import annotations
+
+from typing import Callable
+
+import torch
+
+
+def thresholds(scale_min: float, scale_max: float, points: int, dtype=torch.float32) -> torch.Tensor:
+    """``points`` evenly spaced thresholds from ``scale_min`` to ``scale_max`` inclusive; shape ``[K]``."""
+    if points < 2:
+        raise ValueError(f"profile_points must be at least 2, got {points}")
+    if not scale_min < scale_max:
+        raise ValueError(f"scale min ({scale_min}) must be below max ({scale_max})")
+    return torch.linspace(scale_min, scale_max, points, dtype=dtype)
+
+
+def soft_cdf(pred: torch.Tensor, t: torch.Tensor, sharpness: float) -> torch.Tensor:
+    """Soft CDF of each row of ``pred``.
+
+    pred: ``[U, S]`` predicted ratings of U users on S items each; t: ``[K]`` thresholds.
+    Returns ``[U, K]`` in [0, 1], non-decreasing in k.
+    """
+    if sharpness <= 0:
+        raise ValueError(f"profile_sharpness must be positive, got {sharpness}")
+    return torch.sigmoid((t.view(1, 1, -1) - pred.unsqueeze(-1)) / sharpness).mean(dim=1)
+
+
+def soft_cdf_chunked(predict: Callable[[torch.Tensor, torch.Tensor], torch.Tensor], users: torch.Tensor,
+                     n_items: int, t: torch.Tensor, sharpness: float, budget_bytes: float) -> torch.Tensor:
+    """Exact soft CDF over *all* items without materialising users x items beyond ``budget_bytes``.
+
+    predict(u_idx [B], i_idx [C]) -> [B, C] predictions. Sums sigmoid values chunk by chunk (no autograd:
+    used for targets and reporting). Returns ``[len(users), K]``.
+    """
+    k = t.numel()
+    # Each cell of the block costs the prediction plus K sigmoid values (float32).
+    cell_bytes = 4 * (k + 2)
+    cells = max(1, int(budget_bytes // cell_bytes))
+    item_chunk = max(1, min(n_items, cells))
+    user_chunk = max(1, cells // item_chunk)
+    out = torch.zeros(len(users), k)
+    with torch.no_grad():
+        for us in range(0, len(users), user_chunk):
+            u = users[us:us + user_chunk]
+            acc = torch.zeros(len(u), k)
+            for it in range(0, n_items, item_chunk):
+                i = torch.arange(it, min(n_items, it + item_chunk))
+                p = predict(u, i)
+                acc += torch.sigmoid((t.view(1, 1, -1) - p.unsqueeze(-1)) / sharpness).sum(dim=1)
+            out[us:us + user_chunk] = acc / n_items
+    return out
+
+
+def empirical_cdf(values: torch.Tensor, t: torch.Tensor) -> torch.Tensor:
+    """Plain ECDF of a 1-D sample at thresholds ``t``: ``#{v <= t_k} / n``; shape ``[K]``."""
+    if values.numel() == 0:
+        raise ValueError("empirical_cdf of an empty sample")
+    return (values.view(-1, 1) <= t.view(1, -1)).to(t.dtype).mean(dim=0)

@@ -1,0 +1,277 @@
+"""Training: cold start or warm-started fine-tune of a factoriser under one of the debiasing methods.
+
+Entry point :func:`fit`. Inputs are pandas frames with ``user_id``, ``item_id`` (strings) and
+``rating`` (float, on the scale): organic ratings (MNAR) and probe ratings (MAR). Probe ratings are
+split by :func:`tasks.engine.splits.heldout_mask` into a *fitting* part (probe error, early stopping,
+post-hoc maps) and a *held-out* part that training never reads.
+
+One epoch is one training round: probe errors are refreshed under the current model, reference users
+are redrawn, their profiles are computed once (detached targets), then mini-batches of squared error
+(plus ``calibration_weight`` x the distribution-calibration term on a sample of adjusted users) are taken.
+
+Determinism: ``torch.set_num_threads(model.threads)``, ``torch.use_deterministic_algorithms(True)``, one
+seeded ``torch.Generator`` for init/shuffles/samples and one seeded numpy generator for reference draws.
+Same inputs + config + seed + thread count give bit-identical checkpoints.
+"""
+
+from __future__ import annotations
+
+import copy
+import time
+from dataclasses import dataclass, field
+from typing import Callable
+
+import numpy as np
+import pandas as pd
+import torch
+
+from ..config import DebiasConfig, ModelConfig, ScaleConfig
+from .calibration import calibration_term
+from .checkpoint import Checkpoint
+from .idmap import IdMap
+from .model import BiasedMF
+from .profiles import empirical_cdf, soft_cdf, soft_cdf_chunked, thresholds
+from .propensity import naive_bayes_propensity, rating_weights
+from .recalibration import MonotoneMap
+from .reference import draw_reference_users, probe_errors, reference_probabilities
+from .splits import heldout_mask
+from . import per_user
+
+REQUIRED = ("user_id", "item_id", "rating")
+
+
+class EngineInputError(ValueError):
+    """Training data the engine refuses; the message says which frame and what is wrong."""
+
+
+@dataclass
+class FitResult:
+    checkpoint: Checkpoint
+    rounds: list[dict]                 # one dict per epoch/round (see ``fit``)
+    probe_errors: pd.Series            # user_id -> shrunk probe MAE under the final model
+    probe_fit: pd.DataFrame            # probe ratings used for fitting / early stopping
+    probe_heldout: pd.DataFrame        # probe ratings for evaluation only
+    best_epoch: int
+    new_users: int
+    new_items: int
+    notes: list[str] = field(default_factory=list)
+
+
+def _check_frame(df: pd.DataFrame, name: str, scale: ScaleConfig) -> pd.DataFrame:
+    missing = [c for c in REQUIRED if c not in df.columns]
+    if missing:
+        raise EngineInputError(f"{name} ratings: missing column(s) {missing}")
+    df = df[list(REQUIRED)].copy()
+    if df["user_id"].isna().any() or df["item_id"].isna().any():
+        row = int(np.flatnonzero(df["user_id"].isna().to_numpy() | df["item_id"].isna().to_numpy())[0])
+        raise EngineInputError(f"{name} ratings: null id at row {row}")
+    df["user_id"] = df["user_id"].astype(str)
+    df["item_id"] = df["item_id"].astype(str)
+    r = pd.to_numeric(df["rating"], errors="coerce").to_numpy(dtype=float)
+    bad = ~np.isfinite(r)
+    if bad.any():
+        raise EngineInputError(f"{name} ratings: {int(bad.sum())} NaN/inf/non-numeric rating(s), "
+                               f"first at row {int(np.flatnonzero(bad)[0])}")
+    off = (r < scale.min - 1e-9) | (r > scale.max + 1e-9)
+    if off.any():
+        k = int(np.flatnonzero(off)[0])
+        raise EngineInputError(f"{name} ratings: {int(off.sum())} rating(s) off the scale "
+                               f"[{scale.min}, {scale.max}], first at row {k} (value {r[k]})")
+    df["rating"] = r
+    return df.reset_index(drop=True)
+
+
+def _set_determinism(threads: int) -> None:
+    torch.set_num_threads(threads)
+    torch.use_deterministic_algorithms(True)
+
+
+def _levels(scale: ScaleConfig) -> np.ndarray:
+    return np.asarray(scale.levels if scale.step > 0 else np.linspace(scale.min, scale.max, 9), float)
+
+
+def fit(organic: pd.DataFrame, probe: pd.DataFrame, scale: ScaleConfig, model_cfg: ModelConfig,
+        debias: DebiasConfig, previous: Checkpoint | None = None,
+        log: Callable[[str], None] | None = None) -> FitResult:
+    """Train (or fine-tune ``previous``) and return the checkpoint with per-round facts.
+
+    Each round dict has: ``epoch``, ``reference_users``, ``reference_share`` (of users with a probe
+    error), ``adjusted_users``, ``calibration`` ("on" / "skipped: <why>" / "off"), ``loss`` (mean squared
+    error term), ``calibration_term`` (mean over steps), ``val_mae`` (probe fitting split), ``seconds``.
+    """
+    say = log or (lambda _msg: None)
+    organic = _check_frame(organic, "organic", scale)
+    probe = _check_frame(probe if probe is not None else pd.DataFrame(columns=REQUIRED), "probe", scale)
+    if organic.empty:
+        raise EngineInputError("organic ratings: empty, nothing to train on")
+    _set_determinism(model_cfg.threads)
+    gen = torch.Generator().manual_seed(model_cfg.seed)
+    rng = np.random.default_rng(model_cfg.seed)
+    method = debias.method
+    combine = debias.combine_with if method == "calibrated" else "none"
+    notes: list[str] = []
+
+    # ---- id maps and model ------------------------------------------------------------------
+    users = IdMap(previous.users.ids) if previous else IdMap()
+    items = IdMap(previous.items.ids) if previous else IdMap()
+    new_users = users.extend(pd.concat([organic["user_id"], probe["user_id"]]))
+    new_items = items.extend(pd.concat([organic["item_id"], probe["item_id"]]))
+    if previous is not None:
+        model = copy.deepcopy(previous.model)
+        model.grow(len(users), len(items), model_cfg.init_scale, gen)
+        if getattr(model, "dim", model_cfg.dim) != model_cfg.dim:
+            notes.append(f"warm start keeps the checkpoint's dim={model.dim} (config says {model_cfg.dim})")
+        epochs = model_cfg.finetune_epochs
+    else:
+        model = BiasedMF(len(users), len(items), model_cfg.dim, float(organic["rating"].mean()),
+                         model_cfg.init_scale, gen)
+        epochs = model_cfg.max_epochs
+
+    # ---- probe split ------------------------------------------------------------------------
+    held = heldout_mask(probe["user_id"].to_numpy(), probe["item_id"].to_numpy(), debias.heldout_share)
+    probe_fit, probe_heldout = probe[~held].reset_index(drop=True), probe[held].reset_index(drop=True)
+    pf_u = torch.from_numpy(users.lookup(probe_fit["user_id"]))
+    pf_i = torch.from_numpy(items.lookup(probe_fit["item_id"]))
+    pf_r = probe_fit["rating"].to_numpy(dtype=float, copy=True)
+
+    # ---- training examples and weights ------------------------------------------------------
+    tr_u = users.lookup(organic["user_id"])
+    tr_i = items.lookup(organic["item_id"])
+    tr_r = organic["rating"].to_numpy(dtype=float, copy=True)
+    tr_w = np.ones(len(organic))
+    weighting = method if method in ("ips", "snips") else combine if combine in ("ips", "snips") else None
+    if weighting:
+        if probe_fit.empty:
+            notes.append(f"{weighting}: no probe ratings to estimate P(r); trained unweighted this time")
+        else:
+            share = len(organic) / (len(users) * len(items))
+            prop = naive_bayes_propensity(tr_r, pf_r, _levels(scale), share)
+            tr_w = rating_weights(tr_r, _levels(scale), prop, debias.propensity_clip)
+    if method == "probe_upweight" or combine == "probe_upweight":
+        tr_u = np.concatenate([tr_u, pf_u.numpy()])
+        tr_i = np.concatenate([tr_i, pf_i.numpy()])
+        tr_r = np.concatenate([tr_r, pf_r])
+        tr_w = np.concatenate([tr_w, np.full(len(pf_r), debias.probe_weight)])
+    T_u, T_i = torch.from_numpy(tr_u), torch.from_numpy(tr_i)
+    T_r, T_w = torch.from_numpy(tr_r).float(), torch.from_numpy(tr_w).float()
+    self_normalise = weighting == "snips"
+
+    # ---- calibration setup -------------------------------------------------------------------
+    calibrated = method == "calibrated" and debias.calibration_weight > 0
+    t = thresholds(scale.min, scale.max, debias.profile_points)
+    s = debias.profile_sharpness
+    active_users = torch.from_numpy(np.unique(users.lookup(organic["user_id"])))
+    probe_target = (empirical_cdf(torch.from_numpy(pf_r).float(), t)
+                    if calibrated and debias.probe_target_weight > 0 and len(pf_r) else None)
+    n_items = len(items)
+    sample = debias.profile_item_sample
+    budget = debias.memory_budget_mb * 2**20
+    if calibrated and sample == 0 and debias.users_per_step * n_items * 4 * (len(t) + 3) > budget:
+        # Exact all-item profiles with gradient would exceed the budget: fall back to the largest
+        # uniform item sample that fits, and say so (the estimate stays unbiased).
+        sample = max(8, int(budget // (debias.users_per_step * 4 * (len(t) + 3))))
+        notes.append(f"profile over all {n_items} items exceeds memory_budget_mb; sampling {sample} items per user")
+
+    def profiles_of(u_idx: torch.Tensor, with_grad: bool) -> torch.Tensor:
+        if sample > 0:
+            it = torch.randint(0, n_items, (len(u_idx), sample), generator=gen)
+            with torch.set_grad_enabled(with_grad):
+                return soft_cdf(model.predict_sampled(u_idx, it), t, s)
+        if with_grad:
+            return soft_cdf(model.predict_block(u_idx, torch.arange(n_items)), t, s)
+        return soft_cdf_chunked(model.predict_block, u_idx, n_items, t, s, budget)
+
+    def predict_fit() -> np.ndarray:
+        with torch.no_grad():
+            return model(pf_u, pf_i).double().clamp(scale.min, scale.max).numpy()
+
+    optimiser = torch.optim.SparseAdam(list(model.parameters()), lr=model_cfg.learning_rate)
+    n = len(T_r)
+    bs = min(model_cfg.batch_size, n)
+    rounds: list[dict] = []
+    best_val, best_state, best_epoch, stale = float("inf"), copy.deepcopy(model.state_dict()), 0, 0
+
+    for epoch in range(1, epochs + 1):
+        t0 = time.perf_counter()
+        ref_idx = torch.empty(0, dtype=torch.int64)
+        n_with_error = 0
+        status = "off"
+        if calibrated:
+            errs = probe_errors(pf_u.numpy(), predict_fit(), pf_r, debias.shrinkage)
+            n_with_error = len(errs)
+            probs = reference_probabilities(errs, debias.reference_temperature, debias.reference_p_min,
+                                            debias.reference_p_max)
+            ref_idx = torch.from_numpy(draw_reference_users(probs, rng))
+            is_ref = torch.zeros(len(users), dtype=torch.bool)
+            is_ref[ref_idx] = True
+            adjusted = active_users[~is_ref[active_users]]
+            if len(ref_idx) == 0 and probe_target is None:
+                status = "skipped: no reference users this round"
+            elif len(adjusted) == 0:
+                status = "skipped: every active user is a reference user"
+            else:
+                status = "on"
+            ref_profiles = profiles_of(ref_idx, with_grad=False) if len(ref_idx) else None
+        perm = torch.randperm(n, generator=gen)
+        se_sum, term_sum, steps = 0.0, 0.0, 0
+        for start in range(0, n, bs):
+            b = perm[start:start + bs]
+            u, i, r, w = T_u[b], T_i[b], T_r[b], T_w[b]
+            err2 = (model(u, i) - r) ** 2
+            se = (w * err2).sum() / (w.sum() if self_normalise else len(b))
+            loss = se + model_cfg.weight_decay * model.regulariser(u, i).mean()
+            if status == "on":
+                pick = adjusted[torch.randint(0, len(adjusted), (min(debias.users_per_step, len(adjusted)),),
+                                              generator=gen)]
+                term = calibration_term(profiles_of(pick, with_grad=True), ref_profiles, probe_target,
+                                        debias.probe_target_weight)
+                loss = loss + debias.calibration_weight * term
+                term_sum += term.item()
+            optimiser.zero_grad(set_to_none=True)
+            loss.backward()
+            optimiser.step()
+            se_sum += se.item()
+            steps += 1
+        val = float(np.mean(np.abs(predict_fit() - pf_r))) if len(pf_r) else float("nan")
+        rounds.append({"epoch": epoch, "reference_users": int(len(ref_idx)),
+                       "reference_share": (len(ref_idx) / n_with_error) if n_with_error else float("nan"),
+                       "adjusted_users": int(len(active_users) - len(ref_idx)) if calibrated else 0,
+                       "calibration": status, "loss": se_sum / steps,
+                       "calibration_term": term_sum / steps if status == "on" else float("nan"),
+                       "val_mae": val, "seconds": time.perf_counter() - t0})
+        say(f"round {epoch}: loss={se_sum / steps:.4f} val_mae={val:.4f} calibration={status} "
+            f"references={len(ref_idx)}")
+        if not np.isfinite(se_sum):
+            raise FloatingPointError(f"training diverged at round {epoch} (loss {se_sum}); lower model.learning_rate")
+        if len(pf_r) == 0:
+            best_state, best_epoch = copy.deepcopy(model.state_dict()), epoch
+            continue
+        if val < best_val - 1e-6:
+            best_val, best_state, best_epoch, stale = val, copy.deepcopy(model.state_dict()), epoch, 0
+        else:
+            stale += 1
+            if stale >= model_cfg.patience:
+                break
+    if len(pf_r) == 0:
+        notes.append("no probe ratings in the fitting split: no early stopping, ran every epoch")
+    model.load_state_dict(best_state)
+
+    ckpt = Checkpoint(model=model, users=users, items=items, scale_min=scale.min, scale_max=scale.max,
+                      method=method if combine == "none" else f"{method}+{combine}",
+                      info={"seed": model_cfg.seed, "threads": model_cfg.threads, "best_epoch": best_epoch,
+                            "epochs_run": len(rounds), "warm_start": previous is not None})
+    if previous is not None and previous.user_offset is not None and method == "per_user":
+        ckpt.user_offset = np.concatenate([previous.user_offset,
+                                           np.zeros(len(users) - len(previous.user_offset))])
+    raw_fit = ckpt.raw_scores(pf_u.numpy(), pf_i.numpy())
+    if (method == "recalibrate" or combine == "recalibrate" or method == "per_user") and len(pf_r) >= 2:
+        ckpt.score_map = MonotoneMap.fit(raw_fit, pf_r)
+    if method == "per_user":
+        ckpt.user_offset = per_user.fit_offsets(ckpt, organic, probe_fit, debias, scale)
+    final = ckpt.score_idx(pf_u.numpy(), pf_i.numpy())
+    errs = probe_errors(pf_u.numpy(), final, pf_r, debias.shrinkage)
+    errs.index = users.ids[errs.index.to_numpy()]
+    errs.index.name = "user_id"
+    return FitResult(checkpoint=ckpt, rounds=rounds, probe_errors=errs, probe_fit=probe_fit,
+                     probe_heldout=probe_heldout, best_epoch=best_epoch, new_users=new_users,
+                     new_items=new_items, notes=notes)

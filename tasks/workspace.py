@@ -1,0 +1,116 @@
+"""Where tarewise keeps its state, and how paths are resolved through ``pyarrow.fs``.
+
+Layout under the workspace root (all created on demand)::
+
+    store/dt=YYYY-MM-DD/part-0.parquet   validated ratings (latest event per user, item wins)
+    quarantine/dt=YYYY-MM-DD/part-0.parquet   rejected rows with a reason
+    versions/<version_id>/               predictions.parquet, model/, manifest.json
+    live.json                            pointer to the live version (switched atomically)
+    ledger/runs.parquet                  run ledger
+    metrics/nightly.parquet              drift metrics time series
+    reports/YYYY-MM-DD.html|.json        nightly report and its JSON twin
+    alerts/history.jsonl                 every alert ever raised, with delivery outcome
+    lock                                 store lock (one run at a time)
+    prefect-results/                     Prefect result persistence
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import tempfile
+from dataclasses import dataclass
+from pathlib import Path
+
+import pyarrow.fs as pafs
+
+
+def resolve(uri_or_path: str) -> tuple[pafs.FileSystem, str]:
+    """Return ``(filesystem, path)`` for a local path or a URI such as ``s3://bucket/prefix``.
+
+    Local relative paths are made absolute so the result does not depend on a later chdir.
+    """
+    if "://" in uri_or_path:
+        return pafs.FileSystem.from_uri(uri_or_path)
+    return pafs.LocalFileSystem(), str(Path(uri_or_path).expanduser().resolve())
+
+
+def atomic_write_bytes(path: Path, data: bytes) -> None:
+    """Write ``data`` to ``path`` so readers see either the old or the new file, never a torn one."""
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent)
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(data)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+
+
+def atomic_write_json(path: Path, obj: object) -> None:
+    atomic_write_bytes(path, (json.dumps(obj, indent=2, sort_keys=True, default=str) + "\n").encode())
+
+
+@dataclass(frozen=True)
+class Workspace:
+    """Typed access to the workspace layout. State lives on the local filesystem today
+    (atomic rename is what makes publishing crash-safe); logs may be any ``pyarrow.fs`` URI."""
+
+    root: Path
+
+    @classmethod
+    def at(cls, path: str | os.PathLike) -> "Workspace":
+        p = str(path)
+        if "://" in p and not p.startswith("file://"):
+            raise ValueError(f"workspace {p!r}: only local workspaces are supported for now "
+                             "(atomic publish relies on rename); logs may be remote")
+        p = p.removeprefix("file://")
+        root = Path(p).expanduser().resolve()
+        root.mkdir(parents=True, exist_ok=True)
+        return cls(root)
+
+    @property
+    def store(self) -> Path:
+        return self.root / "store"
+
+    @property
+    def quarantine(self) -> Path:
+        return self.root / "quarantine"
+
+    @property
+    def versions(self) -> Path:
+        return self.root / "versions"
+
+    @property
+    def live_pointer(self) -> Path:
+        return self.root / "live.json"
+
+    @property
+    def ledger(self) -> Path:
+        return self.root / "ledger" / "runs.parquet"
+
+    @property
+    def metrics(self) -> Path:
+        return self.root / "metrics" / "nightly.parquet"
+
+    @property
+    def reports(self) -> Path:
+        return self.root / "reports"
+
+    @property
+    def alerts(self) -> Path:
+        return self.root / "alerts" / "history.jsonl"
+
+    @property
+    def lock(self) -> Path:
+        return self.root / "lock"
+
+    @property
+    def results(self) -> Path:
+        return self.root / "prefect-results"
+
+    def partition(self, base: Path, run_date: str) -> Path:
+        return base / f"dt={run_date}"
