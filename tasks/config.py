@@ -34,11 +34,11 @@ class PathsConfig(_Section):
 
 class ColumnsConfig(_Section):
     """Names of the input columns in the logs, mapped to tarewise's own names."""
-    user_id: str = "user_id"
-    item_id: str = "item_id"
-    rating: str = "rating"
-    event_time: str = "event_time"
-    source: str = "source"
+    user_id: str = Field("user_id", min_length=1, description="Column holding the user id (string or integer).")
+    item_id: str = Field("item_id", min_length=1, description="Column holding the item id (string or integer).")
+    rating: str = Field("rating", min_length=1, description="Column holding the rating (number on the scale).")
+    event_time: str = Field("event_time", min_length=1, description="Column holding the event time (UTC).")
+    source: str = Field("source", min_length=1, description="Column saying organic or probe.")
 
 
 class InputConfig(_Section):
@@ -115,13 +115,14 @@ DebiasMethod = Literal[
 
 
 class DebiasConfig(_Section):
-    method: DebiasMethod = Field("calibrated", description="Training objective of the candidate.")
+    method: DebiasMethod = Field("per_user", description="Debiasing method of the candidate (default: the best "
+                                 "on the open-data check, bench/open_data.py; numbers in README).")
     calibration_weight: float = Field(1.0, ge=0.0, description="lambda: weight of the distribution-calibration term.")
     profile_points: int = Field(10, ge=2, le=512, description="K: thresholds of the soft CDF (rule of thumb: 10+).")
     profile_sharpness: float = Field(0.1, gt=0.0, description="s: sigmoid temperature of the soft CDF, in rating units.")
     reference_temperature: float = Field(0.3, gt=0.0, description="tau: p_u = exp(-probe_error / tau).")
-    reference_p_min: float = Field(0.01, ge=0.0, le=1.0)
-    reference_p_max: float = Field(0.9, ge=0.0, le=1.0)
+    reference_p_min: float = Field(0.01, ge=0.0, le=1.0, description="Lower clip of a user's reference probability.")
+    reference_p_max: float = Field(0.9, ge=0.0, le=1.0, description="Upper clip of a user's reference probability.")
     shrinkage: float = Field(5.0, ge=0.0, description="m: probe error = (n*mae + m*mean)/(n + m).")
     profile_item_sample: int = Field(256, ge=0, description="Items sampled uniformly per user per step for the "
                                      "soft CDF; 0 = all items (chunked under memory_budget_mb).")
@@ -130,25 +131,36 @@ class DebiasConfig(_Section):
     probe_target_weight: float = Field(0.0, ge=0.0, description="Weight of the probe-rating ECDF as an extra "
                                        "target of the calibration term (0 = reference users only).")
     combine_with: Literal["none", "probe_upweight", "ips", "snips", "recalibrate"] = Field(
-        "none", description="Probe-based option applied together with the calibration term.")
+        "none", description="Probe-based option applied together with the calibration term (method "
+        "'calibrated') or under the per-user correction (method 'per_user'; not 'recalibrate').")
     probe_weight: float = Field(5.0, ge=0.0, description="Weight of a probe rating relative to an organic one "
                                 "(probe_upweight).")
     propensity_clip: float = Field(0.05, gt=0.0, le=1.0, description="Lower clip of IPS propensities, relative "
                                    "to the largest propensity.")
     heldout_share: float = Field(0.3, gt=0.0, lt=1.0, description="Share of probe pairs held out for evaluation only "
                                  "(chosen by a hash of user and item).")
-    per_user_prior: float = Field(3.0, ge=0.0, description="Shrinkage strength (pseudo-ratings) of per-user corrections.")
+    per_user_design: Literal["offset", "skew_offset", "skew_affine"] = Field(
+        "skew_affine", description="per_user method: 'offset' = global monotone map + each user's shrunk mean "
+        "probe residual; 'skew_offset' = offset predicted from how the user rates organically (skew model), "
+        "updated by their own probe ratings; 'skew_affine' = as skew_offset plus a predicted per-user slope.")
+    per_user_prior: float = Field(0.0, ge=0.0, description="Pseudo-ratings m shrinking a user's own probe "
+                                  "residuals: shift = sum / (n + m). 0 = estimate m from the data (empirical Bayes).")
+    per_user_min_probes: int = Field(30, ge=2, description="Fewer probe ratings in the fitting split than this: "
+                                     "the skew model is not fitted and the 'offset' design is used.")
 
     @model_validator(mode="after")
     def _p_range(self) -> "DebiasConfig":
         if self.reference_p_min > self.reference_p_max:
             raise ValueError("debias.reference_p_min must not exceed debias.reference_p_max")
+        if self.method == "per_user" and self.combine_with == "recalibrate":
+            raise ValueError("debias.combine_with = 'recalibrate' does not combine with method 'per_user', "
+                             "which fits its own per-user map (use 'none', 'ips', 'snips' or 'probe_upweight')")
         return self
 
 
 class EvaluateConfig(_Section):
     bootstrap: int = Field(500, ge=0, le=100_000, description="Bootstrap resamples for confidence intervals.")
-    confidence: float = Field(0.9, gt=0.0, lt=1.0)
+    confidence: float = Field(0.9, gt=0.0, lt=1.0, description="Coverage of the bootstrap intervals.")
     skew_margin: float = Field(0.5, ge=0.0, description="Stars: a user whose organic mean exceeds their probe "
                                "mean by more than this is 'skewed up' (less: 'down'; else 'neutral').")
 
@@ -166,8 +178,8 @@ class PublishConfig(_Section):
 class RetentionConfig(_Section):
     keep_versions: int = Field(10, ge=1, description="Keep this many newest versions (live and pinned always kept).")
     pinned: tuple[str, ...] = Field((), description="Version ids never deleted.")
-    quarantine_days: int = Field(90, ge=1)
-    metrics_days: int = Field(365, ge=1)
+    quarantine_days: int = Field(90, ge=1, description="Quarantine partitions older than this are deleted.")
+    metrics_days: int = Field(365, ge=1, description="Metric rows older than this are dropped.")
 
 
 class RuntimeConfig(_Section):
@@ -176,8 +188,8 @@ class RuntimeConfig(_Section):
     shadow: bool = Field(True, description="Train a plain shadow model beside the candidate.")
     runner: Literal["thread", "dask"] = Field("thread", description="Prefect task runner.")
     dask_address: str = Field("", description="Existing Dask scheduler address; empty = local cluster.")
-    flow_timeout_seconds: int = Field(6 * 3600, ge=60)
-    io_retries: int = Field(2, ge=0, le=20)
+    flow_timeout_seconds: int = Field(6 * 3600, ge=60, description="A nightly run taking longer is failed.")
+    io_retries: int = Field(2, ge=0, le=20, description="Retries of a task after a transient I/O error.")
     lock_stale_seconds: int = Field(4 * 3600, ge=60, description="A store lock older than this with a dead "
                                     "holder is taken over.")
     min_ratings_to_train: int = Field(1, ge=1, description="Skip training on a date with fewer ratings in the window.")
@@ -197,9 +209,9 @@ class AlertsConfig(_Section):
     webhook_url_env: str = Field("TAREWISE_WEBHOOK_URL", description="Environment variable holding the webhook URL "
                                  "(secrets never live in config files).")
     prefect_blocks: tuple[str, ...] = Field((), description="Names of Prefect notification blocks to notify.")
-    retries: int = Field(3, ge=0, le=20)
-    retry_delay_seconds: float = Field(1.0, ge=0.0)
-    timeout_seconds: float = Field(10.0, gt=0.0)
+    retries: int = Field(3, ge=0, le=20, description="Delivery retries per receiver before recording a failure.")
+    retry_delay_seconds: float = Field(1.0, ge=0.0, description="First retry delay; doubles each retry.")
+    timeout_seconds: float = Field(10.0, gt=0.0, description="HTTP timeout of one delivery attempt.")
 
 
 class Config(_Section):
@@ -281,3 +293,47 @@ def load_config(path: str | Path | None = None, logs: str | None = None, workspa
     cfg = parse_config(raw, source)
     return cfg.with_overrides(logs=logs or os.environ.get("TAREWISE_LOGS"),
                               workspace=workspace or os.environ.get("TAREWISE_WORKSPACE"))
+
+
+def render_example() -> str:
+    """``configs/example.toml``: every key with its default and description (a test keeps them in sync)."""
+    lines = ["# tarewise configuration: every key with its default. Generated by",
+             "#   python -m tasks.config > configs/example.toml",
+             "# Unknown keys are errors. Secrets (webhook URLs) never go here: see alerts.webhook_url_env.", ""]
+
+    def fmt(v: object) -> str:
+        if isinstance(v, bool):
+            return "true" if v else "false"
+        if isinstance(v, (list, tuple)):
+            return "[" + ", ".join(fmt(x) for x in v) + "]"
+        if isinstance(v, str):
+            return json.dumps(v)
+        return repr(v)
+
+    def section(model: type[BaseModel], instance: BaseModel, prefix: str) -> None:
+        nested = []
+        lines.append(f"[{prefix}]")
+        doc = (model.__doc__ or "").strip().splitlines()
+        if doc and not doc[0].startswith("Create a new model"):
+            lines.insert(len(lines) - 1, f"# {doc[0]}")
+        for name, field in model.model_fields.items():
+            value = getattr(instance, name)
+            if isinstance(value, BaseModel):
+                nested.append((name, type(value), value))
+                continue
+            if field.description:
+                lines.append(f"# {field.description}")
+            lines.append(f"{name} = {fmt(value)}")
+        lines.append("")
+        for name, sub_model, sub in nested:
+            section(sub_model, sub, f"{prefix}.{name}")
+
+    cfg = Config()
+    for name in Config.model_fields:
+        sub = getattr(cfg, name)
+        section(type(sub), sub, name)
+    return "\n".join(lines)
+
+
+if __name__ == "__main__":  # pragma: no cover
+    print(render_example(), end="")

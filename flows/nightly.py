@@ -1,0 +1,134 @@
+"""The nightly flow: ingest one day, fine-tune, evaluate, gate, publish, report. Orchestration only."""
+
+from __future__ import annotations
+
+import time
+from datetime import datetime, timedelta
+from zoneinfo import ZoneInfo
+
+from prefect import flow, get_run_logger
+from prefect.artifacts import create_markdown_artifact, create_table_artifact
+
+from tasks import ledger, steps, versions
+from tasks.config import Config
+from tasks.gate import decide
+from tasks.lock import workspace_lock
+from tasks.manifest import build_manifest
+from tasks.night_report import report_night
+from tasks.skew_metrics import user_skew_segments
+from tasks.workspace import Workspace
+
+
+def yesterday(timezone: str) -> str:
+    return (datetime.now(ZoneInfo(timezone)).date() - timedelta(days=1)).isoformat()
+
+
+def _io(step, cfg: Config):
+    """The I/O task with the configured retry count (backoff delays stay as declared on the task)."""
+    return step.with_options(retries=cfg.runtime.io_retries)
+
+
+class _Clock:
+    """Stage durations for the ledger and manifest."""
+
+    def __init__(self) -> None:
+        self.durations: dict[str, float] = {}
+        self._t = time.perf_counter()
+
+    def lap(self, stage: str) -> None:
+        now = time.perf_counter()
+        self.durations[stage] = round(self.durations.get(stage, 0.0) + now - self._t, 3)
+        self._t = now
+
+
+@flow(name="tarewise-nightly")
+def nightly(cfg: Config, run_date: str | None = None, kind: str = "nightly", make_live: bool = True,
+            take_lock: bool = True) -> dict:
+    """One night. ``make_live=False`` publishes without switching live (backfill's middle nights);
+    ``take_lock=False`` when a parent flow (backfill) already holds the workspace lock."""
+    ws = Workspace.at(cfg.paths.workspace)
+    run_date = run_date or yesterday(cfg.runtime.timezone)
+    if take_lock:
+        with workspace_lock(ws.lock, f"{kind} run for {run_date}", cfg.runtime.lock_stale_seconds):
+            return _night(cfg, ws, run_date, kind, make_live)
+    return _night(cfg, ws, run_date, kind, make_live)
+
+
+def _night(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool) -> dict:
+    log = get_run_logger()
+    for name in versions.clean_staging(ws):
+        log.warning("removed half-written version %s left by an interrupted run", name)
+    run_id = ledger.start_run(ws, kind, run_date)
+    clock = _Clock()
+    counts: dict = {}
+    try:
+        result = _io(steps.ingest_partition, cfg)(cfg, run_date)
+        counts = {"rows_read": result.rows_read, "rows_ingested": len(result.valid),
+                  "rows_quarantined": len(result.rejected)}
+        _io(steps.quarantine_and_store, cfg)(cfg, run_date, result)
+        clock.lap("ingest")
+        window = _io(steps.read_window, cfg)(cfg, run_date)
+        if len(window) < cfg.runtime.min_ratings_to_train:
+            message = (f"{len(window)} ratings in the window (< runtime.min_ratings_to_train="
+                       f"{cfg.runtime.min_ratings_to_train}); nothing trained or published")
+            log.warning(message)
+            ledger.finish_run(ws, run_id, "skipped", rows_ingested=counts["rows_ingested"],
+                              rows_quarantined=counts["rows_quarantined"], durations=clock.durations,
+                              message=message)
+            return {"run_date": run_date, "status": "skipped", "version_id": None, "message": message}
+        base_id, base, base_shadow = _io(steps.load_base, cfg)(cfg, run_date)
+        night = steps.train(cfg, window, base, base_shadow)
+        clock.lap("train")
+
+        cand = night.candidate
+        segments = user_skew_segments(window, cfg.evaluate.skew_margin)
+        models = {"candidate": cand.checkpoint, "shadow": night.shadow.checkpoint if night.shadow else None,
+                  "live": base}
+        evaluation = steps.evaluate(cfg, cand.probe_heldout, segments, models)
+        decision = decide(evaluation["candidate"], evaluation["live"], evaluation["shadow"], cfg.gate)
+        log.info("gate: %s (%s)", "promote" if decision.promote else "hold", decision.reason)
+        clock.lap("evaluate")
+
+        preds = steps.build_predictions(cfg, cand.checkpoint, window)
+        version_id = versions.new_version_id(ws, run_date)
+        counts.update(window_ratings=len(window), window_users=int(window["user_id"].nunique()),
+                      window_items=int(window["item_id"].nunique()), new_users=cand.new_users,
+                      new_items=cand.new_items, heldout_probe=len(cand.probe_heldout),
+                      fit_probe=len(cand.probe_fit), predictions=len(preds))
+        manifest = build_manifest(cfg, run_date, kind, base_id, result.files,
+                                  sorted(window["dt"].astype(str).unique().tolist()), counts, evaluation,
+                                  decision.to_dict(), cand.rounds, cand.notes, cand.checkpoint.method)
+        state = _io(steps.publish_version, cfg)(cfg, version_id, cand.checkpoint,
+                                      night.shadow.checkpoint if night.shadow else None, preds, manifest,
+                                      make_live=decision.promote and make_live)
+        clock.lap("publish")
+
+        summary = report_night(cfg, ws, run_date, window, result, night, evaluation, decision, base,
+                               base_id, version_id, state)
+        clock.lap("report")
+        _artifacts(run_date, version_id, state, decision, evaluation, summary)
+        ledger.finish_run(ws, run_id, "done", version_id=version_id, state=state,
+                          rows_ingested=counts["rows_ingested"], rows_quarantined=counts["rows_quarantined"],
+                          durations=clock.durations, message=decision.reason)
+        return {"run_date": run_date, "status": "done", "version_id": version_id, "state": state,
+                "gate": decision.to_dict(), "evaluation": evaluation, "durations": clock.durations,
+                "counts": counts, "alerts": summary.get("alerts", [])}
+    except BaseException as exc:
+        ledger.finish_run(ws, run_id, "failed", rows_ingested=counts.get("rows_ingested"),
+                          rows_quarantined=counts.get("rows_quarantined"), durations=clock.durations,
+                          message=f"{type(exc).__name__}: {exc}"[:2000])
+        raise
+
+
+def _artifacts(run_date, version_id, state, decision, evaluation, summary) -> None:
+    rows = []
+    for name in ("candidate", "shadow", "live"):
+        e = evaluation.get(name)
+        if e:
+            rows.append({"model": name, "n": e["n"], "mae": round(e["mae"], 4),
+                         "mae_ci": f"[{e['mae_lo']:.4f}, {e['mae_hi']:.4f}]", "rmse": round(e["rmse"], 4)})
+    create_table_artifact(key="tarewise-heldout-errors", table=rows,
+                          description=f"Held-out probe errors, run {run_date}")
+    create_markdown_artifact(key="tarewise-night", markdown=summary.get("markdown") or
+                             f"# tarewise {run_date}\n\nversion `{version_id}` is **{state}**: {decision.reason}\n",
+                             description=f"tarewise night {run_date}")

@@ -1,0 +1,50 @@
+"""Top-N recommendation lists from a checkpoint, in user blocks bounded by a memory budget.
+
+Ranking uses raw factoriser scores: the post-processing (monotone map, per-user offset) is
+non-decreasing within a user, so it cannot change a user's order; it is applied to the kept scores only.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import torch
+
+from .checkpoint import Checkpoint
+
+
+def top_n(ckpt: Checkpoint, user_idx: np.ndarray, exclude_u: np.ndarray, exclude_i: np.ndarray, n: int,
+          budget_bytes: float = 256 * 2**20) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Best ``n`` items per user that the user has not rated.
+
+    user_idx: ``[U]`` user indices; exclude_u/exclude_i: ``[E]`` already-rated pairs (indices).
+    Returns flat arrays ``(user, item, score, rank)`` (indices, scale-units float32, 1-based int32),
+    users in the given order, ranks ascending; fewer than ``n`` rows for a user who rated nearly all items.
+    """
+    user_idx = np.asarray(user_idx, np.int64)
+    n_items = len(ckpt.items)
+    k = min(n, n_items)
+    if len(user_idx) == 0 or k == 0:
+        empty = np.empty(0)
+        return empty.astype(np.int64), empty.astype(np.int64), empty.astype(np.float32), empty.astype(np.int32)
+    order = np.argsort(exclude_u, kind="stable")
+    ex_u, ex_i = np.asarray(exclude_u, np.int64)[order], np.asarray(exclude_i, np.int64)[order]
+    block = max(1, int(budget_bytes // (8 * n_items)))
+    outs = []
+    items_all = torch.arange(n_items)
+    with torch.no_grad():
+        for s in range(0, len(user_idx), block):
+            u = user_idx[s:s + block]
+            raw = ckpt.model.predict_block(torch.from_numpy(u), items_all).double()
+            # Mask rated items: locate each block user's excluded pairs via the sorted exclusion list.
+            lo, hi = np.searchsorted(ex_u, u, "left"), np.searchsorted(ex_u, u, "right")
+            rows = np.repeat(np.arange(len(u)), hi - lo)
+            cols = ex_i[np.concatenate([np.arange(a, b) for a, b in zip(lo, hi)])] if len(rows) else np.empty(0, np.int64)
+            raw[torch.from_numpy(rows), torch.from_numpy(cols)] = -np.inf
+            vals, idx = torch.topk(raw, k, dim=1)
+            vals, idx = vals.numpy(), idx.numpy()
+            uu = np.repeat(u, k)
+            keep = np.isfinite(vals.ravel())
+            ranks = np.tile(np.arange(1, k + 1, dtype=np.int32), len(u))
+            flat_u, flat_i, flat_raw = uu[keep], idx.ravel()[keep], vals.ravel()[keep]
+            outs.append((flat_u, flat_i, ckpt.finish(flat_raw, flat_u).astype(np.float32), ranks[keep]))
+    return tuple(np.concatenate(parts) for parts in zip(*outs))

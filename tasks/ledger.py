@@ -1,0 +1,70 @@
+"""The run ledger: every nightly, backfill, rollback or sweep run with status, version, counts, durations.
+
+Stored as one small Parquet file (schemas.LEDGER), rewritten atomically on each update: runs are few
+(one or two a day), so read-modify-write is simpler and safer than appends.
+"""
+
+from __future__ import annotations
+
+import json
+import uuid
+from datetime import datetime, timezone
+
+import pandas as pd
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from .schemas import LEDGER
+from .workspace import Workspace, atomic_write_bytes
+
+
+def read_ledger(ws: Workspace) -> pd.DataFrame:
+    if not ws.ledger.exists():
+        return LEDGER.empty_table().to_pandas()
+    return pq.read_table(ws.ledger).to_pandas()
+
+
+def _write(ws: Workspace, df: pd.DataFrame) -> None:
+    table = pa.Table.from_pandas(df, schema=LEDGER, preserve_index=False)
+    sink = pa.BufferOutputStream()
+    pq.write_table(table, sink)
+    atomic_write_bytes(ws.ledger, sink.getvalue().to_pybytes())
+
+
+def _now() -> pd.Timestamp:
+    return pd.Timestamp(datetime.now(timezone.utc))
+
+
+def start_run(ws: Workspace, kind: str, run_date: str, message: str = "") -> str:
+    run_id = uuid.uuid4().hex[:12]
+    row = {c: None for c in LEDGER.names}
+    row.update(run_id=run_id, kind=kind, run_date=run_date, status="running", started_at=_now(), message=message)
+    df = read_ledger(ws)
+    _write(ws, pd.concat([df, pd.DataFrame([row])], ignore_index=True) if len(df) else pd.DataFrame([row]))
+    return run_id
+
+
+def finish_run(ws: Workspace, run_id: str, status: str, *, version_id: str | None = None, state: str | None = None,
+               rows_ingested: int | None = None, rows_quarantined: int | None = None,
+               durations: dict | None = None, message: str = "") -> None:
+    df = read_ledger(ws)
+    hit = df["run_id"] == run_id
+    if not hit.any():
+        raise KeyError(f"run {run_id} not in ledger {ws.ledger}")
+    updates = {"status": status, "version_id": version_id, "state": state, "rows_ingested": rows_ingested,
+               "rows_quarantined": rows_quarantined, "finished_at": _now(),
+               "durations_json": json.dumps(durations or {}, sort_keys=True), "message": message}
+    for k, v in updates.items():
+        df[k] = df[k].astype(object)
+        df.loc[hit, k] = v
+    _write(ws, df)
+
+
+def completed_dates(ws: Workspace, kinds: tuple[str, ...] = ("nightly", "backfill")) -> set[str]:
+    """Dates whose latest run of these kinds finished ``done`` or ``skipped``."""
+    df = read_ledger(ws)
+    if df.empty:
+        return set()
+    df = df[df["kind"].isin(kinds)].sort_values("started_at")
+    last = df.groupby("run_date").tail(1)
+    return set(last.loc[last["status"].isin(["done", "skipped"]), "run_date"])

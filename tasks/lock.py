@@ -1,0 +1,79 @@
+"""One run at a time: an exclusive lock file on the workspace, with stale-lock detection.
+
+The lock is a file created with ``O_CREAT | O_EXCL`` holding the holder's pid, host and start time. A
+lock is stale when its holder's process is gone (same host) or it is older than
+``runtime.lock_stale_seconds``; a stale lock is taken over, and the takeover is reported.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import socket
+import time
+from contextlib import contextmanager
+from pathlib import Path
+
+
+class LockHeld(RuntimeError):
+    """Another run holds the workspace lock."""
+
+
+def _alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
+
+
+def read_lock(path: Path) -> dict | None:
+    try:
+        return json.loads(path.read_text())
+    except (FileNotFoundError, json.JSONDecodeError):
+        return None
+
+
+def is_stale(info: dict | None, stale_seconds: float) -> bool:
+    if info is None:
+        return True   # unreadable lock content: a crash while writing it
+    if time.time() - float(info.get("started", 0)) > stale_seconds:
+        return True
+    return info.get("host") == socket.gethostname() and not _alive(int(info.get("pid", -1)))
+
+
+@contextmanager
+def workspace_lock(path: Path, what: str, stale_seconds: float):
+    """Hold the lock for the ``with`` block; raise :class:`LockHeld` with the holder's details if taken.
+
+    Yields a dict with ``took_over`` (the stale holder's info, or None).
+    """
+    path.parent.mkdir(parents=True, exist_ok=True)
+    me = {"pid": os.getpid(), "host": socket.gethostname(), "started": time.time(), "what": what}
+    took_over = None
+    for _ in range(2):
+        try:
+            fd = os.open(path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
+        except FileExistsError:
+            holder = read_lock(path)
+            if not is_stale(holder, stale_seconds):
+                since = time.strftime("%Y-%m-%d %H:%M:%S", time.gmtime(float(holder.get("started", 0))))
+                raise LockHeld(f"workspace is locked by {holder.get('what', '?')} (pid {holder.get('pid')} on "
+                               f"{holder.get('host')}, since {since} UTC); lock file: {path}. "
+                               "If that process is gone, the lock is taken over automatically once it is "
+                               "detected as stale.") from None
+            took_over = holder
+            path.unlink(missing_ok=True)
+            continue
+        with os.fdopen(fd, "w") as fh:
+            json.dump(me, fh)
+        break
+    else:
+        raise LockHeld(f"could not take the workspace lock {path} (raced with another run)")
+    try:
+        yield {"took_over": took_over}
+    finally:
+        if (read_lock(path) or {}).get("pid") == me["pid"]:
+            path.unlink(missing_ok=True)

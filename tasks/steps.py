@@ -1,0 +1,103 @@
+"""Prefect task wrappers around the plain units of work in ``tasks/``.
+
+This is the only module in ``tasks/`` that decorates with Prefect. Each wrapper adds what Prefect is for:
+retries with backoff on transient I/O errors (never on bad data), run logging, and no input hashing of
+large frames (``NO_CACHE``: the workspace is the durable state; caching a DataFrame-keyed result would
+cost a hash of every row and duplicate the store).
+"""
+
+from __future__ import annotations
+
+import pandas as pd
+from prefect import get_run_logger, task
+from prefect.cache_policies import NO_CACHE
+
+from . import evaluation, ingest, predictions, store, training, versions
+from .config import Config
+from .engine.checkpoint import Checkpoint
+from .workspace import Workspace
+
+
+def transient_only(task_, task_run, state) -> bool:
+    """Retry condition: retry OS-level I/O failures; bad data or a code error fails at once."""
+    exc = state.data if isinstance(getattr(state, "data", None), BaseException) else None
+    if exc is None:
+        try:
+            state.result()
+        except BaseException as e:  # noqa: BLE001 - we only classify it
+            exc = e
+    return isinstance(exc, OSError) and not isinstance(exc, ValueError)
+
+
+IO = dict(retries=2, retry_delay_seconds=[1, 5], retry_condition_fn=transient_only, cache_policy=NO_CACHE)
+COMPUTE = dict(cache_policy=NO_CACHE)
+
+
+@task(name="ingest-partition", **IO)
+def ingest_partition(cfg: Config, run_date: str) -> ingest.IngestResult:
+    log = get_run_logger()
+    result = ingest.read_partition(cfg.paths.logs, run_date, cfg)
+    if result.missing:
+        log.warning("partition for %s is missing; skipped (input.missing_partition = 'skip')", run_date)
+    log.info("read %d rows from %d file(s): %d valid, %d rejected", result.rows_read, len(result.files),
+             len(result.valid), len(result.rejected))
+    return result
+
+
+@task(name="quarantine-and-store", **IO)
+def quarantine_and_store(cfg: Config, run_date: str, result: ingest.IngestResult) -> None:
+    ws = Workspace.at(cfg.paths.workspace)
+    # Quarantine first: rejected rows are kept even when the share check below fails the run.
+    ingest.write_quarantine(ws, run_date, result.rejected)
+    ingest.check_rejected_share(result, cfg)
+    if not result.missing:
+        store.write_partition(ws, run_date, result.valid)
+
+
+@task(name="read-window", **IO)
+def read_window(cfg: Config, run_date: str) -> pd.DataFrame:
+    return store.read_window(Workspace.at(cfg.paths.workspace), run_date, cfg.window.days)
+
+
+@task(name="load-base", **IO)
+def load_base(cfg: Config, run_date: str) -> tuple[str | None, Checkpoint | None, Checkpoint | None]:
+    ws = Workspace.at(cfg.paths.workspace)
+    vid = versions.base_for_date(ws, run_date)
+    if vid is None:
+        return None, None, None
+    return vid, versions.load_checkpoint(ws, vid, "model"), versions.load_checkpoint(ws, vid, "shadow")
+
+
+@task(name="train", **COMPUTE)
+def train(cfg: Config, window: pd.DataFrame, base: Checkpoint | None,
+          base_shadow: Checkpoint | None) -> training.TrainedNight:
+    log = get_run_logger()
+    night = training.train_night(window, cfg, base, base_shadow, log=log.debug)
+    c = night.candidate
+    log.info("candidate (%s): %d rounds, best %d, %d new users, %d new items", c.checkpoint.method,
+             len(c.rounds), c.best_epoch, c.new_users, c.new_items)
+    for note in c.notes:
+        log.warning("engine: %s", note)
+    return night
+
+
+@task(name="evaluate", **COMPUTE)
+def evaluate(cfg: Config, heldout: pd.DataFrame, segments: pd.Series,
+             models: dict[str, Checkpoint | None]) -> dict:
+    return evaluation.evaluate_models(heldout, segments, models, cfg.evaluate, cfg.model.seed)
+
+
+@task(name="build-predictions", **COMPUTE)
+def build_predictions(cfg: Config, ckpt: Checkpoint, window: pd.DataFrame) -> pd.DataFrame:
+    return predictions.build_predictions(ckpt, window, cfg.publish.top_n, cfg.debias.memory_budget_mb)
+
+
+@task(name="publish-version", **IO)
+def publish_version(cfg: Config, version_id: str, candidate: Checkpoint, shadow: Checkpoint | None,
+                    preds: pd.DataFrame, manifest: dict, make_live: bool) -> str:
+    ws = Workspace.at(cfg.paths.workspace)
+    versions.publish(ws, version_id, candidate, preds, manifest, shadow=shadow)
+    if make_live:
+        versions.set_live(ws, version_id, reason=f"promoted by gate on run {manifest['run_date']}")
+        return "live"
+    return "candidate" if manifest["gate"]["promote"] else "held"
