@@ -17,8 +17,9 @@ from rich.table import Table
 
 app = typer.Typer(add_completion=False, no_args_is_help=True,
                   help="Keep a rating model honest against a random probe: nightly runs, versions, reports.")
-console = Console()
-err = Console(stderr=True)
+# Piped output (logs, CI) gets a fixed, wide layout instead of rich's 80-column default.
+console = Console(width=None if sys.stdout.isatty() else 140)
+err = Console(stderr=True, width=None if sys.stderr.isatty() else 140)
 
 REPO = Path(__file__).resolve().parent.parent
 ConfigOpt = typer.Option(None, "--config", "-c", help="TOML config (see configs/example.toml).")
@@ -108,13 +109,19 @@ def versions_cmd(config: Optional[Path] = ConfigOpt, workspace: Optional[str] = 
     from tasks.workspace import Workspace
     t = Table(title=f"versions in {cfg.paths.workspace}")
     for col in ("version", "state", "run date", "method", "MAE cand.", "MAE shadow", "MAE live", "gate"):
-        t.add_column(col)
+        t.add_column(col, no_wrap=True)
+    reasons = []
     for m in list_versions(Workspace.at(cfg.paths.workspace)):
         mt = m.get("metrics", {})
         f = lambda k: f"{mt[k]['mae']:.4f}" if mt.get(k) else "-"  # noqa: E731
+        gate = m.get("gate", {})
         t.add_row(m["version_id"], m["state"], m.get("run_date", ""), m.get("method", ""), f("candidate"),
-                  f("shadow"), f("live"), m.get("gate", {}).get("reason", ""))
+                  f("shadow"), f("live"), f"{'promote' if gate.get('promote') else 'hold'} vs "
+                  f"{gate.get('compared_to', '?')}")
+        reasons.append(f"{m['version_id']}: {gate.get('reason', '')}")
     console.print(t)
+    for line in reasons:
+        console.print(line, highlight=False, soft_wrap=True)
 
 
 @app.command()
@@ -155,7 +162,8 @@ def demo(folder: Optional[Path] = typer.Option(None, "--dir", help="Folder for d
     if fresh_data:
         from tasks.demo_data import generate
         logs = base / "logs"
-        generate(logs, start_date="2026-11-01", days=max(nights, 4), seed=11)
+        generate(logs, start_date="2026-11-01", days=max(nights, 4), n_members=1500, n_titles=800,
+                 organic_per_day=2500, seed=11, probe_share=0.06)
     cfg = load_config(REPO / "configs" / "demo.toml", logs=str(logs), workspace=str(base / "workspace"))
     _prefect_env(cfg.paths.workspace, verbose)
     from tasks.ingest import list_partition_dates
@@ -185,6 +193,340 @@ def demo(folder: Optional[Path] = typer.Option(None, "--dir", help="Folder for d
         console.print(f"predictions: {ws / 'versions' / live[-1]['version_id'] / 'predictions.parquet'}")
     console.print(f"reports:     {ws / 'reports'}")
     console.print("(demo data is invented: a fictional library network's reading app)")
+
+
+class _LedgerProgress:
+    """A rich progress bar fed by polling run ledgers from a background thread while a flow runs in
+    the main thread: the ledger is what the flow records anyway, so the flow needs no UI hook and the
+    bar shows exactly what is recorded. Time left = remaining nights x mean seconds per finished night
+    (before the first finishes: the median duration of earlier runs in the workspace, marked "~")."""
+
+    def __init__(self, ledgers, kind: str, total: int, title: str, typical: Optional[float]) -> None:
+        import threading
+
+        import pandas as pd
+        from rich.progress import (BarColumn, MofNCompleteColumn, Progress, SpinnerColumn, TextColumn,
+                                   TimeElapsedColumn)
+        self._ledgers, self._kind, self._total, self._typical = ledgers, kind, total, typical
+        self._t0 = pd.Timestamp.now(tz="UTC")
+        self._stop = threading.Event()
+        self._progress = Progress(SpinnerColumn(), TextColumn("{task.description}"), BarColumn(),
+                                  MofNCompleteColumn(), TimeElapsedColumn(), TextColumn("{task.fields[eta]}"),
+                                  console=console, transient=False)
+        first = f"about {_duration(typical * total)} left (from earlier runs)" if typical else "estimating time left"
+        self._task = self._progress.add_task(title, total=total, eta=first)
+        self._thread = threading.Thread(target=self._poll, daemon=True)
+
+    def __enter__(self):
+        self._progress.__enter__()
+        self._thread.start()
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self._stop.set()
+        self._thread.join(timeout=5)
+        self._update()
+        self._progress.__exit__(*exc)
+
+    def _poll(self) -> None:
+        while not self._stop.wait(0.5):
+            try:
+                self._update()
+            except Exception:  # noqa: BLE001 - a torn read of a ledger must not kill the bar
+                pass
+
+    def _update(self) -> None:
+        import pandas as pd
+        from tasks.ledger import read_ledger
+        finished, current = 0, ""
+        for ws in self._ledgers():
+            df = read_ledger(ws)
+            df = df[(df["kind"] == self._kind) & (df["started_at"] >= self._t0)]
+            finished += int(df["status"].isin(["done", "skipped", "failed"]).sum())
+            running = df[df["status"] == "running"]
+            if len(running):
+                current = str(running["run_date"].iloc[-1])
+        elapsed = (pd.Timestamp.now(tz="UTC") - self._t0).total_seconds()
+        left = self._total - finished
+        if finished:
+            eta = f"about {_duration(elapsed / finished * left)} left" if left else "finishing"
+        else:
+            eta = self._progress.tasks[0].fields["eta"]
+        self._progress.update(self._task, completed=min(finished, self._total), eta=eta,
+                              description=f"night {current}" if current else "starting")
+
+
+def _duration(seconds: float) -> str:
+    seconds = int(round(seconds))
+    if seconds < 90:
+        return f"{seconds}s"
+    if seconds < 5400:
+        return f"{seconds // 60}m{seconds % 60:02d}s"
+    return f"{seconds // 3600}h{(seconds % 3600) // 60:02d}m"
+
+
+def _plan_table(plan, title: str) -> Table:
+    t = Table(title=title)
+    for col in ("date", "action", "why"):
+        t.add_column(col, overflow="fold")
+    for p in plan:
+        t.add_row(p.run_date, "[green]run[/]" if p.action == "run" else "[dim]skip[/]", p.reason)
+    return t
+
+
+@app.command()
+def backfill(start: str = typer.Option(..., "--start", help="First date YYYY-MM-DD."),
+             end: str = typer.Option(..., "--end", help="Last date YYYY-MM-DD (inclusive)."),
+             live: str = typer.Option("last", "--live", help="'last': only the last night may go live (the "
+                                      "nights before publish without switching); 'each': every night may."),
+             force: bool = typer.Option(False, "--force", help="Re-run dates already done."),
+             dry_run: bool = typer.Option(False, "--dry-run", help="Print which dates run or are skipped, and "
+                                          "why; run nothing."),
+             sweep: Optional[list[str]] = typer.Option(None, "--sweep", help="KEY=V1,V2,... (repeatable): replay "
+                                                        "the range once per combination, each in a scratch "
+                                                        "workspace, and print the held-out probe MAE table."),
+             config: Optional[Path] = ConfigOpt, logs: Optional[str] = LogsOpt, workspace: Optional[str] = WorkspaceOpt,
+             verbose: bool = typer.Option(False, "--verbose", "-v")) -> None:
+    """Replay past nights date by date, carrying the model forward; resumable, skips dates already done."""
+    cfg = load(config, logs, workspace)
+    from tasks.backfill_plan import LIVE_MODES, BackfillError, plan_backfill, typical_night_seconds
+    from tasks.workspace import Workspace
+    if live not in LIVE_MODES:
+        err.print(f"--live must be one of {', '.join(LIVE_MODES)}, got {live!r}")
+        raise typer.Exit(2)
+    ws = Workspace.at(cfg.paths.workspace)
+    if sweep:
+        _sweep(cfg, ws, start, end, sweep, dry_run, verbose)
+        return
+    try:
+        plan = plan_backfill(ws, cfg, start, end, force)
+    except BackfillError as exc:
+        err.print(f"[bold red]backfill[/]: {exc}", highlight=False)
+        raise typer.Exit(2)
+    to_run = [p for p in plan if p.action == "run"]
+    if dry_run:
+        console.print(_plan_table(plan, f"backfill plan {start}..{end} (--live {live}): {len(to_run)} to run, "
+                                        f"{len(plan) - len(to_run)} to skip"))
+        typical = typical_night_seconds(ws)
+        if to_run and typical:
+            console.print(f"estimated time: about {_duration(typical * len(to_run))} "
+                          f"(median of earlier runs: {typical:.0f}s a night)")
+        return
+    if not to_run:
+        console.print(f"nothing to do: all {len(plan)} date(s) in {start}..{end} are done (--force re-runs them)")
+        return
+    _prefect_env(cfg.paths.workspace, verbose)
+    from flows.backfill import BackfillStopped, backfill as backfill_flow
+    from tasks.lock import LockHeld
+    try:
+        with _LedgerProgress(lambda: [ws], "backfill", len(to_run), "backfill", typical_night_seconds(ws)):
+            out = backfill_flow(cfg=cfg, start=start, end=end, live=live, force=force)
+    except BackfillStopped as exc:
+        err.print(f"[bold red]backfill stopped[/]: {exc}", highlight=False)
+        raise typer.Exit(1)
+    except LockHeld as exc:
+        err.print(f"[bold red]backfill refused[/]: {exc}", highlight=False)
+        raise typer.Exit(1)
+    except Exception as exc:  # noqa: BLE001
+        _fail(exc, "backfill")
+    _print_backfill(out)
+
+
+def _print_backfill(out: dict) -> None:
+    t = Table(title=f"backfill {out['start']}..{out['end']} (--live {out['live_mode']})")
+    for col in ("date", "status", "version", "state", "seconds", "held-out MAE", "note"):
+        t.add_column(col, overflow="fold")
+    for n in out["nights"]:
+        mae = f"{n['mae']:.4f} (n={n['heldout']})" if n.get("mae") is not None else "-"
+        t.add_row(n["run_date"], n["status"], n.get("version_id") or "-", n.get("state") or "-",
+                  f"{n['seconds']:.1f}", mae, n.get("message") or "")
+    console.print(t)
+    if out["skipped"]:
+        console.print(f"{len(out['skipped'])} date(s) skipped as already done (--dry-run shows each, --force re-runs)")
+    console.print(f"live version: {out['live_version'] or 'none'}", highlight=False)
+    if out.get("retention"):
+        r = out["retention"]
+        console.print(f"retention as of {r['as_of']}: {len(r['versions'])} version(s), "
+                      f"{len(r['quarantine_dates'])} quarantine partition(s), {r['metrics_rows']} metric row(s) removed")
+
+
+def _sweep(cfg, ws, start: str, end: str, specs: list[str], dry_run: bool, verbose: bool) -> None:
+    from tasks import sweep as sweeps
+    from tasks.backfill_plan import BackfillError, date_range
+    try:
+        dates = date_range(start, end)
+        grid = sweeps.expand_grid(cfg, sweeps.parse_specs(specs))
+    except (BackfillError, sweeps.SweepError) as exc:
+        err.print(f"[bold red]sweep[/]: {exc}", highlight=False)
+        raise typer.Exit(2)
+    root = sweeps.sweep_root(ws, start, end)
+    if dry_run:
+        console.print(f"sweep {start}..{end}: {len(grid)} setting(s) x {len(dates)} night(s), scratch "
+                      f"workspaces under {root} (the main live version is never touched)")
+        for k, g in enumerate(grid):
+            console.print(f"  s{k:02d}  {sweeps.label(g)}", highlight=False)
+        return
+    _prefect_env(cfg.paths.workspace, verbose)
+    from flows.backfill import sweep as sweep_flow
+    from tasks.lock import LockHeld
+    from tasks.workspace import Workspace
+
+    def scratch_ledgers():
+        return [Workspace.at(p.parent.parent) for p in root.glob("s*/ledger/runs.parquet")]
+
+    try:
+        with _LedgerProgress(scratch_ledgers, "sweep", len(grid) * len(dates), "sweep", None):
+            out = sweep_flow(cfg=cfg, start=start, end=end, grid=grid)
+    except LockHeld as exc:
+        err.print(f"[bold red]sweep refused[/]: {exc}", highlight=False)
+        raise typer.Exit(1)
+    except Exception as exc:  # noqa: BLE001
+        _fail(exc, "sweep")
+    t = Table(title=f"held-out probe MAE by setting, mean over nights {start}..{end}")
+    for col in ("setting", "nights", "held-out n", "MAE", "shadow MAE", "note"):
+        t.add_column(col, overflow="fold")
+    f = lambda x: f"{x:.4f}" if x is not None else "-"  # noqa: E731
+    for r in out["rows"]:
+        note = f"failed {r['error']}" if r["error"] else ("lowest MAE" if r["best"] else "")
+        if r["skipped"]:
+            note = (note + "; " if note else "") + f"{r['skipped']} night(s) too little data"
+        t.add_row(r["label"], str(r["nights"]), str(r["heldout"]), f(r["mae"]), f(r["shadow_mae"]), note)
+    console.print(t)
+    console.print(f"results: {out['results']}\nscratch workspaces: {out['root']}")
+    if any(r["error"] for r in out["rows"]):
+        raise typer.Exit(1)
+
+
+@app.command()
+def status(runs: int = typer.Option(10, "--runs", help="How many ledger rows to show."),
+           days: int = typer.Option(7, "--days", help="Alerts of this many nights up to the newest run."),
+           config: Optional[Path] = ConfigOpt, workspace: Optional[str] = WorkspaceOpt) -> None:
+    """Live version, lock, last runs from the ledger, and recent alerts."""
+    cfg = load(config, None, workspace)
+    from tasks.operations import status as workspace_status
+    from tasks.workspace import Workspace
+    s = workspace_status(Workspace.at(cfg.paths.workspace), cfg.runtime.timezone, cfg.runtime.lock_stale_seconds,
+                         runs, days)
+    console.print(f"workspace: {s['workspace']}", highlight=False)
+    lv = s["live"]
+    if lv:
+        mae = f", held-out MAE {lv['mae']:.4f} (n={lv['heldout']})" if lv.get("mae") is not None else ""
+        console.print(f"live: [bold]{lv['version_id']}[/] (night {lv['run_date']}, {lv['method']}{mae}); "
+                      f"since {lv['since']}: {lv['reason']}", highlight=False)
+    else:
+        console.print("live: none yet")
+    lk = s["lock"]
+    if lk:
+        state = "stale (will be taken over)" if lk["stale"] else "held"
+        console.print(f"lock: {state} by {lk.get('what', '?')} (pid {lk.get('pid')} on {lk.get('host')})",
+                      highlight=False)
+    else:
+        console.print("lock: free")
+    t = Table(title=f"last {len(s['runs'])} run(s)")
+    for col in ("started (UTC)", "kind", "night", "status", "version", "state", "seconds", "message"):
+        t.add_column(col, overflow="fold")
+    colour = {"done": "green", "failed": "red", "interrupted": "red", "running": "yellow", "skipped": "yellow"}
+    for r in s["runs"]:
+        c = colour.get(r["status"], "white")
+        t.add_row(r["started_at"], r["kind"], r["run_date"], f"[{c}]{r['status']}[/]", r["version_id"] or "-",
+                  r["state"] or "-", "-" if r["seconds"] is None else f"{r['seconds']:.1f}", r["message"][:120])
+    console.print(t)
+    if not s["alerts"]:
+        console.print(f"alerts: none for nights after {s['as_of']} minus {s['days']} days")
+        return
+    a = Table(title=f"alerts, {s['days']} nights up to {s['as_of']}")
+    for col in ("night", "severity", "kind", "status", "explanation"):
+        a.add_column(col, overflow="fold")
+    for r in s["alerts"]:
+        a.add_row(str(r.get("run_date")), str(r.get("severity")), str(r.get("kind")), str(r.get("status")),
+                  str(r.get("explanation", ""))[:200])
+    console.print(a)
+
+
+@app.command()
+def rollback(to: str = typer.Option(..., "--to", help="Version id to make live again (see `tarewise versions`)."),
+             reason: str = typer.Option("manual rollback", "--reason", help="Recorded in the ledger and pointer."),
+             config: Optional[Path] = ConfigOpt, workspace: Optional[str] = WorkspaceOpt) -> None:
+    """Make an earlier version live again (one atomic switch), recorded in the run ledger."""
+    cfg = load(config, None, workspace)
+    from tasks.lock import LockHeld
+    from tasks.operations import RollbackError, rollback as do_rollback
+    from tasks.workspace import Workspace
+    try:
+        out = do_rollback(Workspace.at(cfg.paths.workspace), to, reason, cfg.runtime.timezone,
+                          cfg.runtime.lock_stale_seconds)
+    except (RollbackError, LockHeld) as exc:
+        err.print(f"[bold red]rollback refused[/]: {exc}", highlight=False)
+        raise typer.Exit(1)
+    if out["run_id"] is None:
+        console.print(f"{to} is already live; nothing changed")
+        return
+    if out["state_before"] == "held":
+        err.print(f"note: {to} was held by the promotion gate when it was published (see `tarewise versions`)")
+    console.print(f"live: {out['previous'] or 'none'} -> {out['live']} (ledger run {out['run_id']})", highlight=False)
+
+
+@app.command()
+def prune(as_of: Optional[str] = typer.Option(None, "--as-of", help="Reference date for the day-based limits "
+                                              "(default: newest completed run date in the ledger)."),
+          config: Optional[Path] = ConfigOpt, workspace: Optional[str] = WorkspaceOpt) -> None:
+    """Apply the retention settings: old versions (never live or pinned), quarantine and metrics by days."""
+    cfg = load(config, None, workspace)
+    from tasks.ingest import IngestError, parse_run_date
+    from tasks.lock import LockHeld, workspace_lock
+    from tasks.retention import apply_retention, default_as_of
+    from tasks.workspace import Workspace
+    ws = Workspace.at(cfg.paths.workspace)
+    if as_of is not None:
+        try:
+            parse_run_date(as_of)
+        except IngestError as exc:
+            err.print(f"--as-of: {exc}")
+            raise typer.Exit(2)
+    try:
+        with workspace_lock(ws.lock, "prune", cfg.runtime.lock_stale_seconds):
+            result = apply_retention(ws, cfg.retention, as_of or default_as_of(ws, cfg.runtime.timezone))
+    except LockHeld as exc:
+        err.print(f"[bold red]prune refused[/]: {exc}", highlight=False)
+        raise typer.Exit(1)
+    console.print(result.summary(), highlight=False)
+
+
+@app.command()
+def serve(work_pool: Optional[str] = typer.Option(None, "--work-pool", help="Register the deployments on this "
+                                                  "Prefect work pool (run `prefect worker start --pool NAME`) "
+                                                  "instead of serving them from this process."),
+          register_only: bool = typer.Option(False, "--register-only", help="Register (or update) the "
+                                             "deployments and exit."),
+          config: Optional[Path] = ConfigOpt, logs: Optional[str] = LogsOpt, workspace: Optional[str] = WorkspaceOpt,
+          verbose: bool = typer.Option(False, "--verbose", "-v")) -> None:
+    """Register the nightly (cron) and backfill deployments and serve them; needs a Prefect server."""
+    cfg = load(config, logs, workspace)
+    _prefect_env(cfg.paths.workspace, verbose)
+    from prefect.settings import get_current_settings
+    if not get_current_settings().api.url:
+        err.print("[bold red]serve needs a Prefect server[/]: PREFECT_API_URL is not set, and schedules do not fire "
+                  "on Prefect's temporary local server. Start one (`prefect server start`), then\n"
+                  "  export PREFECT_API_URL=http://127.0.0.1:4200/api\nand run `tarewise serve` again. One-off runs "
+                  "need no server: `tarewise run`, `tarewise backfill`.", highlight=False)
+        raise typer.Exit(2)
+    from flows.deployments import build_deployments
+    from tasks.config import ConfigError
+    try:
+        deployments = build_deployments(cfg)
+    except ConfigError as exc:
+        err.print(f"[bold red]config error[/]: {exc}", highlight=False)
+        raise typer.Exit(2)
+    if work_pool or register_only:
+        for d in deployments:
+            dep_id = d.apply(work_pool_name=work_pool) if work_pool else d.apply()
+            console.print(f"registered {d.flow_name}/{d.name} ({dep_id})", highlight=False)
+        if work_pool:
+            console.print(f"start a worker to run them: prefect worker start --pool {work_pool}")
+        return
+    from prefect import serve as prefect_serve
+    console.print(f"serving nightly at '{cfg.runtime.schedule}' ({cfg.runtime.timezone}) and backfill; Ctrl-C stops")
+    prefect_serve(*deployments)
 
 
 def main() -> None:  # pragma: no cover - console entry point

@@ -13,9 +13,10 @@ Ground truth
 
 Organic selection (the MNAR part)
     A member is drawn by activity (log-normal weights, times a per-group multiplier); a candidate
-    title is drawn by Zipf-like popularity; the member rates it with probability
-    ``exp(a * (r - 5))`` (lover), ``exp(-a * (r - 1))`` (hater) or 1 (random); otherwise another title
-    is drawn for the same member. So the day's count is exact and members' activity is respected.
+    title is drawn by Zipf-like popularity (P(rank k) = ln(1 + 1/k) / ln(N + 1)); the member rates
+    it with probability ``exp(a * (r - 5))`` (lover), ``exp(-a * (r - 1))`` (hater) or 1 (random);
+    otherwise another title is drawn for the same member. So the day's count is exact and members'
+    activity is respected. A member may rate the same title again (the store keeps the latest).
 
 Output: ``<out>/dt=YYYY-MM-DD/part-0.parquet`` per day with columns user_id, item_id, rating (float64),
 event_time (timestamp[us, UTC]), source ("organic" / "probe"), plus ``<out>/_truth/`` (members.parquet,
@@ -56,8 +57,7 @@ _DIM = 4
 _FACTOR_SD = 0.55          # dot product sd = 0.55^2 * sqrt(4) ~ 0.6
 _NOISE_SD = 0.5
 _ACTIVITY_SIGMA = 1.0      # log-normal spread of member activity
-_ZIPF_EXPONENT = 1.0
-_MAX_DRAW_ROUNDS = 10_000  # acceptance is >= e^-4 per round, so this bound is never reached in practice
+_MAX_DRAW_ROUNDS = 10_000  # a member's chance to accept a draw is rarely below e^-4: never reached in practice
 
 _US_PER_DAY = 86_400 * 1_000_000
 
@@ -255,8 +255,10 @@ def make_truth(n_members: int, n_titles: int, seed: int,
     activity = rng.lognormal(0.0, _ACTIVITY_SIGMA, n_members)
     title_bias = rng.normal(0.0, _TITLE_BIAS_SD, n_titles)
     title_factors = rng.normal(0.0, _FACTOR_SD, (n_titles, _DIM))
+    # Zipf-like exposure with exponent ~1: P(rank k) = ln(1 + 1/k) / ln(N + 1), the law of floor(X) for
+    # X with density proportional to 1/x on [1, N + 1], which makes a draw O(1) (see _draw_titles).
     ranks = rng.permutation(n_titles) + 1
-    popularity = 1.0 / ranks.astype(np.float64) ** _ZIPF_EXPONENT
+    popularity = np.log1p(1.0 / ranks) / np.log(n_titles + 1.0)
     return GroundTruth(seed=seed, mu=_MU, noise_sd=_NOISE_SD,
                        member_bias=member_bias, member_factors=member_factors, member_group=member_group,
                        member_activity=activity / activity.sum(),
@@ -274,13 +276,20 @@ def _accept_prob(r: np.ndarray, group: np.ndarray, strength: np.ndarray) -> np.n
     return np.where(group == 0, lover, np.where(group == 1, hater, 1.0))
 
 
+def _draw_titles(rng: np.random.Generator, title_by_rank: np.ndarray, size: int) -> np.ndarray:
+    """Titles drawn by popularity: rank = floor(X), X = (N + 1) ** U, i.e. density ~ 1/x on [1, N + 1]."""
+    n = title_by_rank.size
+    rank = np.floor(np.exp(rng.random(size) * np.log(n + 1.0))).astype(np.int64)
+    return title_by_rank[np.clip(rank, 1, n) - 1]
+
+
 def _draw_day(truth: GroundTruth, day_index: int, organic: int, probe_share: float,
-              activity_mult: np.ndarray, strength: np.ndarray) -> tuple[np.ndarray, ...]:
+              activity_mult: np.ndarray, strength: np.ndarray, title_by_rank: np.ndarray
+              ) -> tuple[np.ndarray, ...]:
     """Member numbers, title numbers, ratings, offsets (us into the day) and is_probe for one day."""
     rng = np.random.default_rng([truth.seed, 1, day_index])
     w = truth.member_activity * activity_mult[truth.member_group]
     member_cdf = np.cumsum(w / w.sum())
-    title_cdf = np.cumsum(truth.title_popularity)
     members = np.minimum(np.searchsorted(member_cdf, rng.random(organic), side="right"), truth.n_members - 1)
     titles = np.full(organic, -1, dtype=np.int64)
     ratings = np.zeros(organic)
@@ -288,19 +297,21 @@ def _draw_day(truth: GroundTruth, day_index: int, organic: int, probe_share: flo
     for _ in range(_MAX_DRAW_ROUNDS):
         if pending.size == 0:
             break
-        cand = np.minimum(np.searchsorted(title_cdf, rng.random(pending.size), side="right"), truth.n_titles - 1)
+        cand = _draw_titles(rng, title_by_rank, pending.size)
         m = members[pending]
         r = truth.true_rating_idx(m, cand)
         take = rng.random(pending.size) < _accept_prob(r, truth.member_group[m], strength)
         titles[pending[take]] = cand[take]
         ratings[pending[take]] = r[take]
         pending = pending[~take]
-    if pending.size:  # unreachable with the bounded acceptance; keeps the count exact regardless
+    if pending.size:  # practically unreachable; keeps the day's count exact regardless
         cand = rng.integers(0, truth.n_titles, pending.size)
         titles[pending] = cand
         ratings[pending] = truth.true_rating_idx(members[pending], cand)
 
-    active = np.unique(members)
+    seen = np.zeros(truth.n_members, dtype=bool)
+    seen[members] = True
+    active = np.flatnonzero(seen)
     probe_members = active[rng.random(active.size) < probe_share]
     probe_titles = rng.integers(0, truth.n_titles, probe_members.size)
     probe_ratings = truth.true_rating_idx(probe_members, probe_titles)
@@ -358,6 +369,7 @@ def generate(out_dir: str | Path, start_date: str, days: int, n_members: int, n_
     out.mkdir(parents=True, exist_ok=True)
     member_ids, title_ids = truth.member_ids, truth.title_ids
     base_strength = np.array([truth.selection_strength[g] for g in GROUPS])
+    title_by_rank = np.argsort(-truth.title_popularity, kind="stable")
     for k in range(days):
         day = start + dt.timedelta(days=k)
         activity_mult = np.ones(len(GROUPS))
@@ -370,7 +382,7 @@ def generate(out_dir: str | Path, start_date: str, days: int, n_members: int, n_
                 strength[GROUPS.index(g)] *= v
             if skew_change.probe_share is not None:
                 share = skew_change.probe_share
-        arrays = _draw_day(truth, k, organic_per_day, share, activity_mult, strength)
+        arrays = _draw_day(truth, k, organic_per_day, share, activity_mult, strength, title_by_rank)
         table = _day_table(truth, day, *arrays, member_ids=member_ids, title_ids=title_ids)
         part = out / f"dt={day.isoformat()}"
         part.mkdir(parents=True, exist_ok=True)
