@@ -49,8 +49,9 @@ class InputConfig(_Section):
         "error", description="What a run does when its date's partition is absent.")
     max_rejected_share: float = Field(0.05, ge=0.0, le=1.0,
                                       description="Fail the run before training when more rows than this are rejected.")
-    max_future_seconds: int = Field(86_400, ge=0, description="Rows whose event_time lies further than this past the "
-                                    "end of the run date are quarantined (clock skew allowance).")
+    max_future_seconds: int = Field(3_600, ge=0, description="Allowance (s) around the run date: rows whose event_time "
+                                    "lies further than this after its end (future) or before its start (wrong-day "
+                                    "partition) are quarantined; rows within it are kept (late-flushed events).")
     max_id_length: int = Field(256, ge=1, le=65_536, description="Longer ids are quarantined.")
 
     @model_validator(mode="after")
@@ -124,9 +125,11 @@ class DebiasConfig(_Section):
     reference_p_min: float = Field(0.01, ge=0.0, le=1.0, description="Lower clip of a user's reference probability.")
     reference_p_max: float = Field(0.9, ge=0.0, le=1.0, description="Upper clip of a user's reference probability.")
     shrinkage: float = Field(5.0, ge=0.0, description="m: probe error = (n*mae + m*mean)/(n + m).")
-    profile_item_sample: int = Field(256, ge=0, description="Items sampled uniformly per user per step for the "
-                                     "soft CDF; 0 = all items (chunked under memory_budget_mb).")
-    users_per_step: int = Field(256, ge=1, description="Adjusted users per calibration step.")
+    profile_item_sample: int = Field(256, ge=0, description="Items sampled uniformly per step for the soft CDF "
+                                     "(one sample shared by the step's users; an independent one per reference "
+                                     "user); 0 = all items (chunked under memory_budget_mb).")
+    users_per_step: int = Field(256, ge=1, description="Cap on adjusted users per training step; a round visits "
+                                "every adjusted user once, spread evenly over its mini-batches.")
     memory_budget_mb: float = Field(256.0, gt=0.0, description="Cap on the users x items block held at once.")
     probe_target_weight: float = Field(0.0, ge=0.0, description="Weight of the probe-rating ECDF as an extra "
                                        "target of the calibration term (0 = reference users only).")

@@ -357,7 +357,8 @@ def _reasons(cfg: Config) -> dict[str, str]:
         "time_bad": "event_time is not a readable timestamp",
         "time_future": (f"event_time more than {i.max_future_seconds} s after the end of the run date "
                         "(input.max_future_seconds)"),
-        "time_wrong_day": "event_time on another UTC day than the partition date (wrong-day partition)",
+        "time_wrong_day": ("event_time before the partition date by more than input.max_future_seconds "
+                           "(wrong-day partition)"),
         "duplicate": DUPLICATE,
     }
 
@@ -418,7 +419,10 @@ def _check_rows(t: pa.Table, flags: dict[str, np.ndarray], day: dt.date, cfg: Co
     else:
         future = usable & (t_us > end + cfg.input.max_future_seconds * _US)
         masks["time_future"] = future
-        masks["time_wrong_day"] = usable & ~future & ((t_us < start) | (t_us >= end))
+        # Events within the allowance either side of the day are kept: late-flushed buffers put
+        # a few events just past midnight into the neighbouring partition, and they are real ratings.
+        slack = cfg.input.max_future_seconds * _US
+        masks["time_wrong_day"] = usable & ~future & (t_us < start - slack)
     return masks, snapped
 
 

@@ -163,7 +163,7 @@ CASES = {
                              reason="after the end of the run date (input.max_future_seconds)", rejected=1, valid=2),
     "wrong_day_partition": Case(lambda: [("p.parquet", table([(f"m{k}", "t", 3.0, utc("2026-10-31T12:00:00"),
                                                                "organic") for k in range(3)]))],
-                                reason="another UTC day than the partition date (wrong-day partition)",
+                                reason="before the partition date by more than input.max_future_seconds (wrong-day partition)",
                                 rejected=3, valid=0),
     "timestamp_text_unparseable": Case(
         lambda: [("p.parquet", table([("m1", "t", 3.0, "2026-11-01T10:00:00Z", "organic"),
@@ -200,7 +200,7 @@ CASES = {
         rejected=0, valid=3,
         check=_times_and_ratings_cast),
     "date_column": Case(lambda: [("p.parquet", table([("m1", "t", 3.0, dt.date(2026, 11, 1), "organic"),
-                                                      ("m2", "t", 3.0, dt.date(2026, 11, 2), "organic")],
+                                                      ("m2", "t", 3.0, dt.date(2026, 10, 30), "organic")],
                                                      event_time=pa.date32()))],
                         reason="wrong-day partition", rejected=1, valid=1),
     "rating_text_overflow": Case(lambda: [("p.parquet", table([("m", "t", "1e400", T0, "organic"),
@@ -429,3 +429,18 @@ def test_logs_given_as_a_uri_go_through_pyarrow_fs(logs: Path, cfg: Config) -> N
     res = read_partition(logs.as_uri(), DAY, cfg)      # file:///... resolved by pyarrow.fs
     assert res.rows_valid == 3
     assert list_partition_dates(logs.as_uri()) == [DAY]
+
+
+def test_events_within_the_allowance_around_the_day_are_kept(logs: Path) -> None:
+    """A buffer flushed just after midnight puts a few events into the neighbouring partition: kept
+    within input.max_future_seconds either side, quarantined beyond it."""
+    cfg = Config().updated({"input.max_future_seconds": 600})
+    rows = [("m1", "t", 3.0, utc("2026-10-31T23:55:00"), "organic"),   # 5 min early: kept
+            ("m2", "t", 3.0, utc("2026-11-02T00:05:00"), "organic"),   # 5 min late: kept
+            ("m3", "t", 3.0, utc("2026-10-31T23:00:00"), "organic"),   # an hour early: wrong day
+            ("m4", "t", 3.0, utc("2026-11-02T01:00:00"), "organic")]   # an hour late: future
+    write(logs, table(rows))
+    res = read_partition(str(logs), DAY, cfg)
+    assert sorted(res.valid["user_id"]) == ["m1", "m2"]
+    reasons = dict(zip(res.rejected["user_id"], res.rejected["reason"]))
+    assert "wrong-day" in reasons["m3"] and "after the end of the run date" in reasons["m4"]
