@@ -207,6 +207,12 @@ class DriftConfig(_Section):
                                       "users with a probe rating falls below this.")
     max_quarantine_share: float = Field(0.02, ge=0.0, le=1.0, description="Alert above this rejected share.")
 
+    @model_validator(mode="after")
+    def _baseline_fits(self) -> "DriftConfig":
+        if self.min_baseline_nights > self.baseline_nights:
+            raise ValueError("drift.min_baseline_nights must not exceed drift.baseline_nights")
+        return self
+
 
 class AlertsConfig(_Section):
     webhook_url_env: str = Field("TAREWISE_WEBHOOK_URL", description="Environment variable holding the webhook URL "

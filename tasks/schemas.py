@@ -61,7 +61,7 @@ LEDGER = pa.schema([
     pa.field("run_id", pa.string(), nullable=False),
     pa.field("kind", pa.string(), nullable=False),        # nightly | backfill | rollback | sweep
     pa.field("run_date", pa.string(), nullable=False),    # YYYY-MM-DD
-    pa.field("status", pa.string(), nullable=False),      # running | done | failed | skipped
+    pa.field("status", pa.string(), nullable=False),      # running | done | failed | skipped | interrupted
     pa.field("version_id", pa.string()),
     pa.field("state", pa.string()),                       # live | held | ""
     pa.field("rows_ingested", pa.int64()),
@@ -92,11 +92,13 @@ NIGHTLY_METRICS = pa.schema([
     pa.field("skew_organic_mean", _F64), pa.field("skew_probe_mean", _F64),
     pa.field("skew_mean_shift", _F64),                             # organic mean - probe mean
     pa.field("skew_js", _F64), pa.field("skew_w1", _F64),
+    # their standard errors from tonight's organic sampling noise alone (delta method)
+    pa.field("skew_mean_shift_se", _F64), pa.field("skew_js_se", _F64), pa.field("skew_w1_se", _F64),
     pa.field("skew_test", pa.string()),                            # "chi2" (stepped scale) or "ks"
     pa.field("skew_stat", _F64), pa.field("skew_pvalue", _F64),
     # the same over the whole training window (smoother, lags a shift)
     pa.field("window_organic_n", _I64), pa.field("window_probe_n", _I64),
-    pa.field("window_mean_shift", _F64), pa.field("window_js", _F64), pa.field("window_w1", _F64),
+    pa.field("window_organic_mean", _F64), pa.field("window_mean_shift", _F64), pa.field("window_js", _F64), pa.field("window_w1", _F64),
     pa.field("window_pvalue", _F64),
     # per-user skew (users with both kinds of rating in the window)
     pa.field("users_with_both", _I64), pa.field("users_unknown", _I64),
