@@ -58,6 +58,13 @@ def run(date: Optional[str] = typer.Option(None, "--date", "-d", help="Run date 
     """One nightly run. Exits non-zero on failure; the live version is then untouched."""
     cfg = load(config, logs, workspace)
     _prefect_env(cfg.paths.workspace, verbose)
+    from tasks.lock import LockHeld, check_free
+    from tasks.workspace import Workspace
+    try:
+        check_free(Workspace.at(cfg.paths.workspace).lock, cfg.runtime.lock_stale_seconds)
+    except LockHeld as exc:
+        err.print(f"[bold red]refused[/]: {exc}", highlight=False)
+        raise typer.Exit(3)
     from flows.nightly import nightly
     try:
         with console.status(f"nightly run for {date or 'yesterday'} ..."):
@@ -253,7 +260,8 @@ class _LedgerProgress:
         else:
             eta = self._progress.tasks[0].fields["eta"]
         self._progress.update(self._task, completed=min(finished, self._total), eta=eta,
-                              description=f"night {current}" if current else "starting")
+                              description=f"night {current}" if current else
+                              ("done" if finished >= self._total else "starting"))
 
 
 def _duration(seconds: float) -> str:
@@ -296,6 +304,10 @@ def backfill(start: str = typer.Option(..., "--start", help="First date YYYY-MM-
         raise typer.Exit(2)
     ws = Workspace.at(cfg.paths.workspace)
     if sweep:
+        if force or live != "last":
+            err.print("--force and --live do not apply to --sweep (each setting replays the range afresh in its "
+                      "own scratch workspace and never goes live)")
+            raise typer.Exit(2)
         _sweep(cfg, ws, start, end, sweep, dry_run, verbose)
         return
     try:
@@ -315,9 +327,14 @@ def backfill(start: str = typer.Option(..., "--start", help="First date YYYY-MM-
     if not to_run:
         console.print(f"nothing to do: all {len(plan)} date(s) in {start}..{end} are done (--force re-runs them)")
         return
+    from tasks.lock import LockHeld, check_free
+    try:
+        check_free(ws.lock, cfg.runtime.lock_stale_seconds)
+    except LockHeld as exc:
+        err.print(f"[bold red]backfill refused[/]: {exc}", highlight=False)
+        raise typer.Exit(1)
     _prefect_env(cfg.paths.workspace, verbose)
     from flows.backfill import BackfillStopped, backfill as backfill_flow
-    from tasks.lock import LockHeld
     try:
         with _LedgerProgress(lambda: [ws], "backfill", len(to_run), "backfill", typical_night_seconds(ws)):
             out = backfill_flow(cfg=cfg, start=start, end=end, live=live, force=force)
@@ -432,9 +449,9 @@ def status(runs: int = typer.Option(10, "--runs", help="How many ledger rows to 
                   r["state"] or "-", "-" if r["seconds"] is None else f"{r['seconds']:.1f}", r["message"][:120])
     console.print(t)
     if not s["alerts"]:
-        console.print(f"alerts: none for nights after {s['as_of']} minus {s['days']} days")
+        console.print(f"alerts: none in the {s['days']} nights up to {s['as_of']}")
         return
-    a = Table(title=f"alerts, {s['days']} nights up to {s['as_of']}")
+    a = Table(title=f"alerts in the {s['days']} nights up to {s['as_of']}")
     for col in ("night", "severity", "kind", "status", "explanation"):
         a.add_column(col, overflow="fold")
     for r in s["alerts"]:
@@ -508,7 +525,7 @@ def serve(work_pool: Optional[str] = typer.Option(None, "--work-pool", help="Reg
         err.print("[bold red]serve needs a Prefect server[/]: PREFECT_API_URL is not set, and schedules do not fire "
                   "on Prefect's temporary local server. Start one (`prefect server start`), then\n"
                   "  export PREFECT_API_URL=http://127.0.0.1:4200/api\nand run `tarewise serve` again. One-off runs "
-                  "need no server: `tarewise run`, `tarewise backfill`.", highlight=False)
+                  "need no server: `tarewise run`, `tarewise backfill`.", highlight=False, soft_wrap=True)
         raise typer.Exit(2)
     from flows.deployments import build_deployments
     from tasks.config import ConfigError

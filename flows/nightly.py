@@ -15,6 +15,7 @@ from tasks.gate import decide
 from tasks.lock import workspace_lock
 from tasks.manifest import build_manifest
 from tasks.night_report import report_night
+from tasks.retention import apply_retention_logged
 from tasks.skew_metrics import user_skew_segments
 from tasks.workspace import Workspace
 
@@ -43,18 +44,22 @@ class _Clock:
 
 @flow(name="tarewise-nightly")
 def nightly(cfg: Config, run_date: str | None = None, kind: str = "nightly", make_live: bool = True,
-            take_lock: bool = True) -> dict:
+            take_lock: bool = True, base_from: str | None = None) -> dict:
     """One night. ``make_live=False`` publishes without switching live (backfill's middle nights);
-    ``take_lock=False`` when a parent flow (backfill) already holds the workspace lock."""
+    ``take_lock=False`` when a parent flow (backfill) already holds the workspace lock; ``base_from``
+    warm-starts from that version's chain instead of the live one (see ``versions.base_for_date``)."""
     ws = Workspace.at(cfg.paths.workspace)
     run_date = run_date or yesterday(cfg.runtime.timezone)
     if take_lock:
         with workspace_lock(ws.lock, f"{kind} run for {run_date}", cfg.runtime.lock_stale_seconds):
-            return _night(cfg, ws, run_date, kind, make_live)
-    return _night(cfg, ws, run_date, kind, make_live)
+            # Holding the lock, no other run of this workspace is alive: "running" rows are dead runs.
+            for run_id in ledger.mark_interrupted(ws):
+                get_run_logger().warning("run %s never finished (killed or crashed); marked interrupted", run_id)
+            return _night(cfg, ws, run_date, kind, make_live, base_from)
+    return _night(cfg, ws, run_date, kind, make_live, base_from)
 
 
-def _night(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool) -> dict:
+def _night(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool, base_from: str | None) -> dict:
     log = get_run_logger()
     for name in versions.clean_staging(ws):
         log.warning("removed half-written version %s left by an interrupted run", name)
@@ -76,7 +81,7 @@ def _night(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool
                               rows_quarantined=counts["rows_quarantined"], durations=clock.durations,
                               message=message)
             return {"run_date": run_date, "status": "skipped", "version_id": None, "message": message}
-        base_id, base, base_shadow = _io(steps.load_base, cfg)(cfg, run_date)
+        base_id, base, base_shadow = _io(steps.load_base, cfg)(cfg, run_date, base_from)
         night = steps.train(cfg, window, base, base_shadow)
         clock.lap("train")
 
@@ -110,6 +115,8 @@ def _night(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool
         ledger.finish_run(ws, run_id, "done", version_id=version_id, state=state,
                           rows_ingested=counts["rows_ingested"], rows_quarantined=counts["rows_quarantined"],
                           durations=clock.durations, message=decision.reason)
+        if kind == "nightly":  # a backfill applies retention once, after its last night
+            apply_retention_logged(cfg, ws, run_date, log)
         return {"run_date": run_date, "status": "done", "version_id": version_id, "state": state,
                 "gate": decision.to_dict(), "evaluation": evaluation, "durations": clock.durations,
                 "counts": counts, "alerts": summary.get("alerts", [])}

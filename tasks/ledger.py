@@ -68,3 +68,28 @@ def completed_dates(ws: Workspace, kinds: tuple[str, ...] = ("nightly", "backfil
     df = df[df["kind"].isin(kinds)].sort_values("started_at")
     last = df.groupby("run_date").tail(1)
     return set(last.loc[last["status"].isin(["done", "skipped"]), "run_date"])
+
+
+def latest_by_date(ws: Workspace, kinds: tuple[str, ...] = ("nightly", "backfill")) -> pd.DataFrame:
+    """The latest run (by start time) of these kinds for each run date, indexed by ``run_date``."""
+    df = read_ledger(ws)
+    df = df[df["kind"].isin(kinds)]
+    if df.empty:
+        return df.set_index("run_date")
+    return df.sort_values("started_at", kind="stable").groupby("run_date").tail(1).set_index("run_date").sort_index()
+
+
+def mark_interrupted(ws: Workspace, message: str = "process ended without finishing (killed or crashed)") -> list[str]:
+    """Mark every ``running`` row ``interrupted``; call only while holding the workspace lock (then no
+    run of this workspace can still be going). Returns the run ids changed."""
+    df = read_ledger(ws)
+    hit = df["status"] == "running"
+    if not hit.any():
+        return []
+    ids = df.loc[hit, "run_id"].tolist()
+    df["status"] = df["status"].astype(object)
+    df["message"] = df["message"].astype(object)
+    df.loc[hit, "status"] = "interrupted"
+    df.loc[hit, "message"] = message
+    _write(ws, df)
+    return ids

@@ -44,6 +44,21 @@ def is_stale(info: dict | None, stale_seconds: float) -> bool:
     return info.get("host") == socket.gethostname() and not _alive(int(info.get("pid", -1)))
 
 
+def _held_message(path: Path, holder: dict) -> str:
+    since = time.strftime("%Y-%m-%d %H:%M:%S", time.gmtime(float(holder.get("started", 0))))
+    return (f"workspace is locked by {holder.get('what', '?')} (pid {holder.get('pid')} on "
+            f"{holder.get('host')}, since {since} UTC); lock file: {path}. "
+            "If that process is gone, the lock is taken over automatically once it is detected as stale.")
+
+
+def check_free(path: Path, stale_seconds: float) -> None:
+    """Raise :class:`LockHeld` (same message as :func:`workspace_lock`) when a live holder has the lock.
+    A courtesy check before starting a long run; only taking the lock is a guarantee."""
+    holder = read_lock(path)
+    if path.exists() and holder is not None and not is_stale(holder, stale_seconds):
+        raise LockHeld(_held_message(path, holder))
+
+
 @contextmanager
 def workspace_lock(path: Path, what: str, stale_seconds: float):
     """Hold the lock for the ``with`` block; raise :class:`LockHeld` with the holder's details if taken.
@@ -59,11 +74,7 @@ def workspace_lock(path: Path, what: str, stale_seconds: float):
         except FileExistsError:
             holder = read_lock(path)
             if not is_stale(holder, stale_seconds):
-                since = time.strftime("%Y-%m-%d %H:%M:%S", time.gmtime(float(holder.get("started", 0))))
-                raise LockHeld(f"workspace is locked by {holder.get('what', '?')} (pid {holder.get('pid')} on "
-                               f"{holder.get('host')}, since {since} UTC); lock file: {path}. "
-                               "If that process is gone, the lock is taken over automatically once it is "
-                               "detected as stale.") from None
+                raise LockHeld(_held_message(path, holder)) from None
             took_over = holder
             path.unlink(missing_ok=True)
             continue

@@ -60,9 +60,11 @@ def read_window(cfg: Config, run_date: str) -> pd.DataFrame:
 
 
 @task(name="load-base", **IO)
-def load_base(cfg: Config, run_date: str) -> tuple[str | None, Checkpoint | None, Checkpoint | None]:
+def load_base(cfg: Config, run_date: str, base_from: str | None = None
+              ) -> tuple[str | None, Checkpoint | None, Checkpoint | None]:
+    """``base_from``: start the base walk from this version instead of the live one (backfill chains)."""
     ws = Workspace.at(cfg.paths.workspace)
-    vid = versions.base_for_date(ws, run_date)
+    vid = versions.base_for_date(ws, run_date, head=base_from)
     if vid is None:
         return None, None, None
     return vid, versions.load_checkpoint(ws, vid, "model"), versions.load_checkpoint(ws, vid, "shadow")

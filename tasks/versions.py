@@ -141,40 +141,76 @@ def list_versions(ws: Workspace) -> list[dict]:
     return sorted(out, key=lambda m: (m.get("run_date", ""), m.get("published_at", ""), m["version_id"]))
 
 
-def base_for_date(ws: Workspace, run_date: str) -> str | None:
+def base_for_date(ws: Workspace, run_date: str, head: str | None = None) -> str | None:
     """The version a run for ``run_date`` warm-starts from and is gated against.
 
     The live version if it is from an earlier date; otherwise walk back along each version's own base
     until one from an earlier date. So re-running a date starts from exactly what its first run started
     from (identical predictions), and a rollback is respected.
+
+    ``head`` starts the walk from that version instead of the live one: a backfill that publishes only
+    its last night as live passes the previous backfilled night's version, so the chain carries forward
+    through versions that were never live.
     """
-    vid = live_version(ws)
+    vid = head if head is not None else live_version(ws)
     seen = set()
     while vid is not None and vid not in seen:
         seen.add(vid)
-        m = read_manifest(ws, vid)
+        try:
+            m = read_manifest(ws, vid)
+        except VersionError:
+            raise VersionError(f"cannot choose the base for {run_date}: version {vid} is gone from "
+                               f"{ws.versions} (deleted by retention?); pin it in retention.pinned, or "
+                               "re-run from an earlier date") from None
         if m.get("run_date", "") < run_date:
             return vid
         vid = m.get("base_version")
     return None
 
 
+def _newest_first(manifests: list[dict]) -> list[dict]:
+    return sorted(manifests, key=lambda m: (m.get("published_at", ""), m["version_id"]), reverse=True)
+
+
 def prune(ws: Workspace, keep: int, pinned: tuple[str, ...] = ()) -> list[str]:
-    """Delete all but the newest ``keep`` versions; never the live one, a pinned one, or the live
-    version's base chain needed to re-run its date. Returns deleted ids."""
-    versions = list_versions(ws)
+    """Delete all but the ``keep`` most recently published versions; never the live one, a pinned one,
+    or the live version's base (needed to re-run the live version's date identically). Returns the
+    deleted ids, oldest first.
+
+    "Most recently published", not "latest run date": a re-run or backfill of old dates publishes
+    versions that are new work, and the next night of a backfill warm-starts from the one just
+    published. A version is first renamed to ``.trash-<id>`` (one atomic step, after which no reader
+    lists it), then removed; a crash in between leaves only a hidden folder that the next prune clears.
+    """
+    if keep < 1:
+        raise VersionError(f"retention.keep_versions must be >= 1, got {keep}")
+    clear_trash(ws)
+    manifests = list_versions(ws)
     live = live_version(ws)
     protect = set(pinned) | ({live} if live else set())
     if live:
         base = read_manifest(ws, live).get("base_version")
         if base:
             protect.add(base)
-    newest = {m["version_id"] for m in versions[-keep:]}
+    newest = {m["version_id"] for m in _newest_first(manifests)[:keep]}
     deleted = []
-    for m in versions:
+    for m in manifests:
         vid = m["version_id"]
         if vid in protect or vid in newest:
             continue
-        shutil.rmtree(ws.versions / vid, ignore_errors=True)
+        trash = ws.versions / f".trash-{vid}"
+        os.rename(ws.versions / vid, trash)
+        shutil.rmtree(trash, ignore_errors=True)
         deleted.append(vid)
     return deleted
+
+
+def clear_trash(ws: Workspace) -> list[str]:
+    """Remove ``.trash-*`` folders left by a prune that was interrupted; return their names."""
+    if not ws.versions.exists():
+        return []
+    gone = []
+    for p in ws.versions.glob(".trash-*"):
+        shutil.rmtree(p, ignore_errors=True)
+        gone.append(p.name)
+    return gone

@@ -11,6 +11,7 @@ Layout under the workspace root (all created on demand)::
     reports/YYYY-MM-DD.html|.json        nightly report and its JSON twin
     alerts/history.jsonl                 every alert ever raised, with delivery outcome
     lock                                 store lock (one run at a time)
+    sweeps/<start>_<end>/s<k>/           scratch workspaces of a settings sweep (tasks/sweep.py)
     prefect-results/                     Prefect result persistence
 """
 

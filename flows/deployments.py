@@ -1,0 +1,106 @@
+"""Prefect deployments for unattended operation: the nightly run on a cron schedule, backfill on demand.
+
+Config travels as a parameter. ``tarewise serve`` validates the config file once, resolves its paths
+to absolute ones and passes the whole validated config as the deployment parameter ``settings`` (a
+JSON object). Each run validates it again (``parse_config``; a value edited in the Prefect UI fails with
+the key named), so a run never depends on a file that may have changed or is absent on a worker's
+machine, and the UI shows exactly what the runs use. Changing the config means running
+``tarewise serve`` again (it re-registers the deployments; the schedule comes from the config too).
+
+No overlap: each deployment has a concurrency limit of one with the ENQUEUE strategy: a run that
+would overlap waits until the one in progress ends. A queued scheduled run still processes its own
+night, because its date comes from its *scheduled* start time, not from when it starts. Runs of
+different deployments, and runs started by hand (``tarewise run``/``backfill``), are kept apart by the
+workspace lock (``tasks/lock.py``): the later one is refused with the holder named, and a lock whose
+holder died is taken over. Each night has the flow timeout ``runtime.flow_timeout_seconds``.
+"""
+
+from __future__ import annotations
+
+from datetime import datetime, timedelta
+from pathlib import Path
+from typing import Literal
+from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
+
+from prefect import flow
+from prefect.client.schemas.objects import ConcurrencyLimitConfig, ConcurrencyLimitStrategy
+from prefect.deployments.runner import EntrypointType, RunnerDeployment
+from prefect.schedules import Cron
+
+from flows.backfill import backfill
+from flows.nightly import nightly
+from tasks.config import Config, ConfigError, parse_config
+
+NIGHTLY_DEPLOYMENT = "nightly"
+BACKFILL_DEPLOYMENT = "backfill"
+COLLISION = ConcurrencyLimitStrategy.ENQUEUE
+TAGS = ["tarewise"]
+
+
+def night_for(scheduled: datetime, timezone: str) -> str:
+    """The night a run scheduled at ``scheduled`` processes: the day before, in ``timezone``."""
+    return (scheduled.astimezone(ZoneInfo(timezone)).date() - timedelta(days=1)).isoformat()
+
+
+def _settings(settings: dict) -> Config:
+    return parse_config(settings, source="deployment parameter 'settings'")
+
+
+@flow(name="tarewise-scheduled-nightly")
+def scheduled_nightly(settings: dict, run_date: str | None = None) -> dict:
+    """One scheduled night: ``run_date`` defaults to the day before the run's scheduled start (in
+    ``runtime.timezone``), so a run that waited in the queue still processes its own night."""
+    cfg = _settings(settings)
+    if run_date is None:
+        from prefect.runtime import flow_run
+        run_date = night_for(flow_run.scheduled_start_time, cfg.runtime.timezone)
+    return nightly.with_options(timeout_seconds=cfg.runtime.flow_timeout_seconds)(cfg=cfg, run_date=run_date)
+
+
+@flow(name="tarewise-scheduled-backfill")
+def scheduled_backfill(settings: dict, start: str, end: str, live: Literal["last", "each"] = "last",
+                       force: bool = False) -> dict:
+    """A backfill started from the Prefect UI or API (``start``/``end`` given per run)."""
+    return backfill(cfg=_settings(settings), start=start, end=end, live=live, force=force)
+
+
+def deployment_settings(cfg: Config) -> dict:
+    """The validated config as JSON, with local paths made absolute (runs may start elsewhere)."""
+    raw = cfg.model_dump(mode="json")
+    for key in ("logs", "workspace"):
+        value = raw["paths"][key]
+        if "://" not in value:
+            raw["paths"][key] = str(Path(value).expanduser().resolve())
+    return raw
+
+
+def check_schedule(cfg: Config) -> Cron:
+    """The nightly schedule, or :class:`ConfigError` naming ``runtime.timezone``/``runtime.schedule``."""
+    try:
+        ZoneInfo(cfg.runtime.timezone)
+    except (ZoneInfoNotFoundError, ValueError):
+        raise ConfigError(f"runtime.timezone: {cfg.runtime.timezone!r} is not an IANA time zone "
+                          "(e.g. 'Europe/Berlin', 'UTC')") from None
+    try:
+        return Cron(cfg.runtime.schedule, timezone=cfg.runtime.timezone)
+    except ValueError as exc:
+        raise ConfigError(f"runtime.schedule: {cfg.runtime.schedule!r} is not a valid cron string "
+                          f"({exc})") from None
+
+
+def build_deployments(cfg: Config) -> list[RunnerDeployment]:
+    """The two deployments (not yet registered): ``tarewise-scheduled-nightly/nightly`` on the cron
+    schedule, ``tarewise-scheduled-backfill/backfill`` with no schedule (start it with parameters)."""
+    schedule = check_schedule(cfg)
+    settings = deployment_settings(cfg)
+    limit = ConcurrencyLimitConfig(limit=1, collision_strategy=COLLISION)
+    common = dict(concurrency_limit=limit, tags=TAGS, entrypoint_type=EntrypointType.MODULE_PATH)
+    night = scheduled_nightly.to_deployment(
+        name=NIGHTLY_DEPLOYMENT, schedule=schedule, parameters={"settings": settings},
+        description=f"tarewise nightly run at '{cfg.runtime.schedule}' ({cfg.runtime.timezone}) on "
+                    f"workspace {settings['paths']['workspace']}", **common)
+    fill = scheduled_backfill.to_deployment(
+        name=BACKFILL_DEPLOYMENT, parameters={"settings": settings, "live": "last", "force": False},
+        description=f"tarewise backfill of a date range on workspace {settings['paths']['workspace']}; "
+                    "give start and end (YYYY-MM-DD) per run", **common)
+    return [night, fill]
