@@ -1,8 +1,9 @@
 """A trained model with everything needed to score: id maps, factoriser, post-processing, scale.
 
 Scoring pipeline for a pair (u, i): raw = factoriser(u, i) -> monotone map (identity unless a
-recalibrating method fitted one) -> + per-user offset (zero unless a per-user method fitted one) ->
-clip to [scale min, scale max].
+recalibrating method fitted one) -> x per-user scale (one unless a per-user method fitted one, never
+negative, so a user's item order is kept) -> + per-user offset (zero unless a per-user method fitted one)
+-> clip to [scale min, scale max].
 
 Unknown ids (documented fallback): an unknown user scores ``mu + b_i`` (the item's average-user score);
 an unknown item scores ``mu + b_u`` (+ the user's offset); both unknown score ``mu``; each then goes
@@ -37,6 +38,7 @@ class Checkpoint:
     method: str
     score_map: MonotoneMap = field(default_factory=MonotoneMap)
     user_offset: np.ndarray | None = None      # [n_users] float, additive, rating units
+    user_scale: np.ndarray | None = None       # [n_users] float >= 0, multiplies the mapped score
     info: dict = field(default_factory=dict)   # free-form facts (seed, epochs, ...) saved in meta.json
 
     # ---- scoring -------------------------------------------------------------------------------
@@ -60,8 +62,10 @@ class Checkpoint:
     def finish(self, raw: np.ndarray, u: np.ndarray) -> np.ndarray:
         """Post-process raw scores of users ``u`` (indices, -1 = unknown) onto the rating scale."""
         out = self.score_map(raw)
+        u = np.asarray(u, np.int64)
+        if self.user_scale is not None:
+            out = out * np.where(u >= 0, self.user_scale[np.clip(u, 0, None)], 1.0)
         if self.user_offset is not None:
-            u = np.asarray(u, np.int64)
             out = out + np.where(u >= 0, self.user_offset[np.clip(u, 0, None)], 0.0)
         return np.clip(out, self.scale_min, self.scale_max)
 
@@ -86,6 +90,8 @@ class Checkpoint:
         self.items.save(directory / "items.parquet")
         if self.user_offset is not None:
             pq.write_table(pa.table({"offset": self.user_offset.astype(np.float64)}), directory / "user_offset.parquet")
+        if self.user_scale is not None:
+            pq.write_table(pa.table({"scale": self.user_scale.astype(np.float64)}), directory / "user_scale.parquet")
         meta = {"format": FORMAT, "hyper": self.model.hyper(), "scale": [self.scale_min, self.scale_max],
                 "method": self.method, "score_map": self.score_map.to_dict(), "info": self.info}
         (directory / "meta.json").write_text(json.dumps(meta, indent=2, sort_keys=True, default=str))
@@ -103,7 +109,10 @@ class Checkpoint:
         model.load_state_dict(torch.load(directory / "model.pt", weights_only=True))
         offset_path = directory / "user_offset.parquet"
         offset = pq.read_table(offset_path).column("offset").to_numpy() if offset_path.exists() else None
+        scale_path = directory / "user_scale.parquet"
+        user_scale = pq.read_table(scale_path).column("scale").to_numpy() if scale_path.exists() else None
         return cls(model=model, users=IdMap.load(directory / "users.parquet"),
                    items=IdMap.load(directory / "items.parquet"), scale_min=meta["scale"][0],
                    scale_max=meta["scale"][1], method=meta["method"],
-                   score_map=MonotoneMap.from_dict(meta["score_map"]), user_offset=offset, info=meta["info"])
+                   score_map=MonotoneMap.from_dict(meta["score_map"]), user_offset=offset, user_scale=user_scale,
+                   info=meta["info"])
