@@ -57,7 +57,7 @@ def test_three_nights_publish_three_versions_with_sane_outputs(three_nights):
     assert list(ledger["status"]) == ["done"] * 3
 
 
-def test_calibrated_candidate_beats_shadow_on_demo(three_nights):
+def test_debiased_candidate_beats_plain_shadow_on_demo(three_nights):
     """The demo logs are built with lover/hater selection skew (tasks/demo_data.py): the debiased
     candidate must beat the plain shadow on held-out probe MAE, summed over the three nights."""
     _, outs = three_nights
