@@ -32,7 +32,33 @@ def soft_cdf(pred: torch.Tensor, t: torch.Tensor, sharpness: float) -> torch.Ten
     """
     if sharpness <= 0:
         raise ValueError(f"profile_sharpness must be positive, got {sharpness}")
-    return torch.sigmoid((t.view(1, 1, -1) - pred.unsqueeze(-1)) / sharpness).mean(dim=1)
+    return _SoftCdf.apply(pred, (t / sharpness).to(pred.dtype), 1.0 / sharpness)
+
+
+class _SoftCdf(torch.autograd.Function):
+    """``mean_s sigmoid(t_k / s - pred_us / s)`` with a hand-written backward.
+
+    The [U, K, S] block is the calibration term's main cost; autograd's generic backward makes about
+    twice as many passes over it (mean, negation and broadcast reductions each materialise it). Here:
+    forward = broadcast-subtract, in-place sigmoid, mean; backward = one fused sigmoid_backward and one
+    sum over K. Checked by ``torch.autograd.gradcheck`` in tests/test_engine_calibration.py.
+    """
+
+    @staticmethod
+    def forward(ctx, pred: torch.Tensor, t_scaled: torch.Tensor, inv_s: float) -> torch.Tensor:
+        # Laid out [U, K, S] so the long item axis is innermost (contiguous, vectorised); with the short
+        # K axis innermost the two big kernels ran ~1.5x slower (torch.profiler, 40 x 256 x 10 block).
+        sig = torch.sigmoid_(t_scaled.view(1, -1, 1) - (pred * inv_s).unsqueeze(1))    # [U, K, S]
+        ctx.save_for_backward(sig)
+        ctx.inv_s = inv_s
+        return sig.mean(dim=2)
+
+    @staticmethod
+    def backward(ctx, grad_f: torch.Tensor):
+        sig, = ctx.saved_tensors
+        # dF_k/dpred_s = -inv_s / S * sig (1 - sig); the constant is folded into the small [U, K] grad.
+        g = (grad_f * (-ctx.inv_s / sig.shape[2])).unsqueeze(2).expand_as(sig)
+        return torch.ops.aten.sigmoid_backward(g, sig).sum(dim=1), None, None
 
 
 def soft_cdf_chunked(predict: Callable[[torch.Tensor, torch.Tensor], torch.Tensor], users: torch.Tensor,

@@ -1,0 +1,256 @@
+"""Engine benchmark: seconds per epoch of plain vs calibrated training, throughput and peak memory.
+
+Not a timed test. Generates synthetic selection-skewed logs (invented numbers, vectorised generation:
+never a users x items array) at up to three sizes and trains each case in its own subprocess so that
+peak memory (``ru_maxrss``) belongs to that case alone. Prints a markdown table and writes it to
+``bench/out/engine.md``.
+
+    python bench/bench_engine.py                    # 100k, 1M and 5M ratings
+    python bench/bench_engine.py --sizes 100k,1M    # a subset
+    python bench/bench_engine.py --epochs 3         # average over more epochs
+
+Goals (from the engine issue): calibrated epoch <= 1.5x plain epoch at 1M ratings; peak memory bounded by
+``debias.memory_budget_mb`` plus the data, not by users x items.
+"""
+
+from __future__ import annotations
+
+import argparse
+import gc
+import json
+import os
+import platform
+import resource
+import subprocess
+import sys
+import tempfile
+import threading
+import time
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+ROOT = Path(__file__).resolve().parents[1]
+OUT = ROOT / "bench" / "out" / "engine.md"
+
+#: name -> (ratings, users, items). Invented sizes spanning the issue's ranges.
+SIZES = {
+    "100k": (100_000, 10_000, 5_000),
+    "1M": (1_000_000, 40_000, 20_000),
+    "5M": (5_000_000, 100_000, 50_000),
+}
+METHODS = ("plain", "calibrated")
+
+
+def synthetic_logs(n_ratings: int, n_users: int, n_items: int, seed: int = 0,
+                   probe_share: float = 0.03, probes_per_user: int = 5) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """Organic (MNAR) and probe (MAR) ratings, 1-5 stars, ids like ``member-000123`` / ``title-004567``.
+
+    Users' activity and items' popularity are long-tailed (Zipf-like weights); a drawn (user, item) pair is
+    kept with a probability that depends on its true rating (members mostly rate what they loved or
+    hated). Everything is drawn in vectors of length ~n_ratings; memory is O(n_ratings + users + items).
+    """
+    rng = np.random.default_rng(seed)
+    dim = 8
+    P = rng.normal(0, 0.5, (n_users, dim)).astype(np.float32)
+    Q = rng.normal(0, 0.5, (n_items, dim)).astype(np.float32)
+    bu = rng.normal(0, 0.4, n_users).astype(np.float32)
+    bi = rng.normal(0, 0.5, n_items).astype(np.float32)
+    user_w = 1.0 / np.arange(1, n_users + 1) ** 0.6
+    item_w = 1.0 / np.arange(1, n_items + 1) ** 0.9
+    user_w, item_w = rng.permutation(user_w / user_w.sum()), rng.permutation(item_w / item_w.sum())
+    keep_by_star = np.array([0.5, 0.15, 0.08, 0.3, 0.9])   # invented selection: extremes get rated
+
+    def true_rating(u: np.ndarray, i: np.ndarray) -> np.ndarray:
+        score = 3.0 + bu[u] + bi[i] + np.einsum("nd,nd->n", P[u], Q[i])
+        return np.clip(np.rint(score + rng.normal(0, 0.3, len(u))), 1, 5)
+
+    pairs = np.empty(0, dtype=np.int64)
+    stars = np.empty(0)
+    while len(pairs) < n_ratings:
+        m = int((n_ratings - len(pairs)) * 3.2) + 1000
+        u = rng.choice(n_users, m, p=user_w)
+        i = rng.choice(n_items, m, p=item_w)
+        r = true_rating(u, i)
+        keep = rng.random(m) < keep_by_star[r.astype(int) - 1]
+        pairs = np.concatenate([pairs, u[keep].astype(np.int64) * n_items + i[keep]])
+        stars = np.concatenate([stars, r[keep]])
+        pairs, first = np.unique(pairs, return_index=True)   # one rating per pair
+        stars = stars[first]
+    pick = np.sort(rng.choice(len(pairs), n_ratings, replace=False))
+    pairs, stars = pairs[pick], stars[pick]
+    user_ids = np.array([f"member-{k:06d}" for k in range(n_users)], dtype=object)
+    item_ids = np.array([f"title-{k:06d}" for k in range(n_items)], dtype=object)
+    organic = pd.DataFrame({"user_id": user_ids[pairs // n_items], "item_id": item_ids[pairs % n_items],
+                            "rating": stars})
+    pu = np.repeat(rng.choice(n_users, max(1, int(probe_share * n_users)), replace=False), probes_per_user)
+    pi = rng.integers(0, n_items, len(pu))
+    probe = pd.DataFrame({"user_id": user_ids[pu], "item_id": item_ids[pi], "rating": true_rating(pu, pi)})
+    return organic, probe
+
+
+def _rss_mb() -> float:
+    """Peak resident set size of this process so far, MB (ru_maxrss: KiB on Linux, bytes on macOS)."""
+    scale = 1 / 1024 if sys.platform != "darwin" else 1 / 2**20
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * scale
+
+
+def _current_rss_mb() -> float:
+    """Current resident set size, MB (Linux /proc; falls back to the peak elsewhere)."""
+    try:
+        with open("/proc/self/status") as fh:
+            for line in fh:
+                if line.startswith("VmRSS:"):
+                    return int(line.split()[1]) / 1024
+    except OSError:
+        pass
+    return _rss_mb()
+
+
+class _RssSampler:
+    """Highest current RSS seen while training, sampled every 20 ms by a background thread.
+
+    ru_maxrss alone cannot tell training's peak from the Parquet read's peak before it.
+    """
+
+    def __init__(self) -> None:
+        self.peak = _current_rss_mb()
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._run, daemon=True)
+
+    def _run(self) -> None:
+        while not self._stop.wait(0.02):
+            self.peak = max(self.peak, _current_rss_mb())
+
+    def __enter__(self) -> "_RssSampler":
+        self._thread.start()
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self._stop.set()
+        self._thread.join()
+        self.peak = max(self.peak, _current_rss_mb())
+
+
+def run_case(size: str, method: str, epochs: int, overrides: dict, data_dir: Path) -> dict:
+    """Train one case in this process; return its measurements."""
+    import torch
+
+    from tasks.config import Config
+    from tasks.engine.trainer import fit
+
+    torch.set_num_threads(1)
+    # Read the logs the parent generated: generation's temporary arrays would otherwise set the peak.
+    organic = pd.read_parquet(data_dir / "organic.parquet")
+    probe = pd.read_parquet(data_dir / "probe.parquet")
+    gc.collect()
+    rss_data = _current_rss_mb()
+    nu = pd.concat([organic["user_id"], probe["user_id"]]).nunique()     # members actually present
+    ni = pd.concat([organic["item_id"], probe["item_id"]]).nunique()
+    cfg = Config().updated({"debias.method": method, "model.max_epochs": epochs, "model.patience": epochs + 1,
+                            **overrides})
+    # CPU seconds of each round from the per-round log callback (the machine may be shared, so wall time
+    # alone can mislead); round 1 is left out of the CPU figure because it also carries the setup.
+    cpu_marks: list[float] = []
+    t0 = time.perf_counter()
+    cpu_start = time.process_time()
+    with _RssSampler() as rss:
+        res = fit(organic, probe, cfg.scale, cfg.model, cfg.debias,
+                  log=lambda _m: cpu_marks.append(time.process_time()))
+    total = time.perf_counter() - t0
+    secs = [r["seconds"] for r in res.rounds]
+    cpu = np.diff(cpu_marks) if len(cpu_marks) > 1 else np.array([cpu_marks[0] - cpu_start])
+    return {"size": size, "method": method, "ratings": len(organic), "users": nu, "items": ni,
+            "probe": len(probe), "epochs": len(secs), "sec_per_epoch": float(np.mean(secs)),
+            "cpu_per_epoch": float(np.mean(cpu)),
+            "ratings_per_sec": len(organic) / float(np.mean(secs)), "fit_total_s": total,
+            "rss_before_fit_mb": rss_data, "peak_rss_fit_mb": rss.peak, "peak_rss_mb": _rss_mb(),
+            "calibration": res.rounds[-1]["calibration"], "budget_mb": cfg.debias.memory_budget_mb,
+            "users_per_step": cfg.debias.users_per_step, "profile_item_sample": cfg.debias.profile_item_sample}
+
+
+def _subprocess_case(size: str, method: str, epochs: int, overrides: dict, data_dir: Path) -> dict:
+    cmd = [sys.executable, str(Path(__file__).resolve()), "--case", f"{size}:{method}", "--epochs", str(epochs),
+           "--overrides", json.dumps(overrides), "--data", str(data_dir)]
+    env = {**os.environ, "PYTHONPATH": str(ROOT), "OMP_NUM_THREADS": "1"}
+    done = subprocess.run(cmd, capture_output=True, text=True, env=env, cwd=ROOT)
+    if done.returncode != 0:
+        raise RuntimeError(f"case {size}:{method} failed:\n{done.stderr[-4000:]}")
+    return json.loads(done.stdout.strip().splitlines()[-1])
+
+
+def table(rows: list[dict]) -> str:
+    by = {(r["size"], r["method"]): r for r in rows}
+    lines = ["| size | ratings | users | items | method | s/epoch (wall) | ratio (wall) | CPU s/epoch "
+             "| ratio (CPU) | ratings/s (wall) | RSS at fit start (MB) | peak RSS in fit (MB) | growth (MB) "
+             "| process peak (MB) | users x items float32 (MB) |",
+             "|---|---:|---:|---:|---|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|"]
+    for r in rows:
+        plain = by.get((r["size"], "plain"))
+        ratio = f"{r['sec_per_epoch'] / plain['sec_per_epoch']:.2f}x" if plain else "-"
+        cpu_ratio = f"{r['cpu_per_epoch'] / plain['cpu_per_epoch']:.2f}x" if plain else "-"
+        dense = r["users"] * r["items"] * 4 / 2**20
+        lines.append(f"| {r['size']} | {r['ratings']:,} | {r['users']:,} | {r['items']:,} | {r['method']} "
+                     f"| {r['sec_per_epoch']:.2f} | {ratio} | {r['cpu_per_epoch']:.2f} | {cpu_ratio} "
+                     f"| {r['ratings_per_sec']:,.0f} "
+                     f"| {r['rss_before_fit_mb']:.0f} | {r['peak_rss_fit_mb']:.0f} "
+                     f"| {r['peak_rss_fit_mb'] - r['rss_before_fit_mb']:.0f} | {r['peak_rss_mb']:.0f} | {dense:,.0f} |")
+    return "\n".join(lines)
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--sizes", default="100k,1M,5M", help="comma list of " + ",".join(SIZES))
+    ap.add_argument("--epochs", type=int, default=3, help="epochs per case (time is averaged over them)")
+    ap.add_argument("--overrides", default="{}", help='JSON of dotted config overrides, e.g. '
+                    '\'{"debias.users_per_step": 128}\'')
+    ap.add_argument("--out", default=str(OUT))
+    ap.add_argument("--case", help=argparse.SUPPRESS)   # internal: run one case, print JSON
+    ap.add_argument("--data", help=argparse.SUPPRESS)   # internal: folder with the case's Parquet logs
+    args = ap.parse_args()
+    overrides = json.loads(args.overrides)
+    if args.case:
+        size, method = args.case.split(":")
+        print(json.dumps(run_case(size, method, args.epochs, overrides, Path(args.data))))
+        return
+    sizes = [s.strip() for s in args.sizes.split(",") if s.strip()]
+    unknown = [s for s in sizes if s not in SIZES]
+    if unknown:
+        ap.error(f"unknown size(s) {unknown}; choose from {list(SIZES)}")
+    rows = []
+    for size in sizes:
+        with tempfile.TemporaryDirectory(prefix=f"tarewise-bench-{size}-") as tmp:
+            t0 = time.perf_counter()
+            organic, probe = synthetic_logs(*SIZES[size])
+            organic.to_parquet(Path(tmp) / "organic.parquet")
+            probe.to_parquet(Path(tmp) / "probe.parquet")
+            del organic, probe
+            print(f"{size}: generated in {time.perf_counter() - t0:.1f} s", file=sys.stderr, flush=True)
+            for method in METHODS:
+                r = _subprocess_case(size, method, args.epochs, overrides, Path(tmp))
+                rows.append(r)
+                print(f"{size} {method}: {r['sec_per_epoch']:.2f} s/epoch (CPU {r['cpu_per_epoch']:.2f}), "
+                      f"RSS {r['rss_before_fit_mb']:.0f} -> {r['peak_rss_fit_mb']:.0f} MB in fit", file=sys.stderr,
+                      flush=True)
+    first = rows[0]
+    header = (f"# Engine benchmark\n\nSynthetic selection-skewed logs (invented numbers), {args.epochs} epoch(s) "
+              f"per case, 1 torch thread, one subprocess per case, {platform.processor() or platform.machine()}, "
+              f"{os.cpu_count()} cores. Defaults: batch 1024, dim 16, users_per_step {first['users_per_step']}, "
+              f"profile_item_sample {first['profile_item_sample']}, memory_budget_mb {first['budget_mb']:.0f}"
+              f"{'; overrides ' + json.dumps(overrides) if overrides else ''}.\n"
+              "Logs are generated once per size and read from Parquet by each case. "
+              "Ratio = calibrated / plain seconds per epoch (goal <= 1.5x at 1M); CPU columns leave out round 1 "
+              "(it carries the setup) and are the fairer figure on a shared machine. RSS is the whole process "
+              "(Python + torch + data): at fit start (current), highest while fitting (sampled every 20 ms), "
+              "their difference, and the process peak (which may be the Parquet read). The last column is "
+              "what one dense users x items float32 matrix would need.\n\n")
+    text = header + table(rows) + "\n"
+    print(text)
+    out = Path(args.out)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    out.write_text(text)
+
+
+if __name__ == "__main__":
+    main()
