@@ -285,7 +285,7 @@ def add_gap(df: pd.DataFrame) -> pd.DataFrame:
     if not {"plain", "oracle"} <= set(df["method"]):
         return df
     for metric, col in (("mae", "gap_closed"), ("rmse", "rmse_gap_closed")):
-        ref = df.pivot(index="seed", columns="method", values=metric)
+        ref = df.set_index(["seed", "method"])[metric].unstack("method")
         gap = ref["plain"] - ref["oracle"]
         df[col] = [(ref.at[s, "plain"] - m) / gap[s] for s, m in zip(df["seed"], df[metric])]
     return df

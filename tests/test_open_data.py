@@ -96,7 +96,7 @@ def test_default_closes_most_of_the_plain_to_oracle_gap(headline) -> None:
     ~0.16 plain-to-oracle gap; the MAE of a 14k-cell test split has a sampling sd of about 0.01, so 0.08 is
     far outside noise) and close at least 80% of the gap on average (the goal of the per-user issue).
     """
-    mae = headline.pivot(index="seed", columns="method", values="mae")
+    mae = headline.set_index(["seed", "method"])["mae"].unstack("method")
     assert (mae["plain"] - mae["default"] >= 0.08).all(), mae
     gap = headline[headline["method"] == "default"]["gap_closed"]
     assert gap.mean() >= 0.80, gap.tolist()
@@ -107,7 +107,7 @@ def test_default_makes_no_selection_group_worse(headline) -> None:
     """Per group, the default's MAE (mean over seeds) may not exceed plain's by more than plain's own
     seed-to-seed spread in that group (its std over the seeds, at least 0.01)."""
     for g in od.GROUPS:
-        per = headline.pivot(index="seed", columns="method", values=f"mae_{g}")
+        per = headline.set_index(["seed", "method"])[f"mae_{g}"].unstack("method")
         spread = max(float(per["plain"].std(ddof=1)), 0.01)
         assert per["default"].mean() <= per["plain"].mean() + spread, (g, per)
 
