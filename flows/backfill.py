@@ -14,8 +14,8 @@ from typing import Literal
 
 from prefect import flow, get_run_logger
 
-from flows.nightly import nightly
-from tasks import failpoints, ledger, sweep as sweeps
+from flows.nightly import nightly_for
+from tasks import failpoints, ledger, runners, sweep as sweeps
 from tasks.backfill_plan import chain_head, date_range, make_live_for, plan_backfill
 from tasks.config import Config
 from tasks.lock import workspace_lock
@@ -47,8 +47,9 @@ def backfill(cfg: Config, start: str, end: str, live: Literal["last", "each"] = 
     log = get_run_logger()
     ws = Workspace.at(cfg.paths.workspace)
     dates = date_range(start, end)
-    run_night = nightly.with_options(timeout_seconds=cfg.runtime.flow_timeout_seconds)
-    with workspace_lock(ws.lock, f"backfill {start}..{end}", cfg.runtime.lock_stale_seconds) as held:
+    with workspace_lock(ws.lock, f"backfill {start}..{end}", cfg.runtime.lock_stale_seconds) as held, \
+            runners.shared_cluster(cfg.runtime) as cluster:
+        run_night = nightly_for(cfg, dask_address=cluster)
         if held["took_over"]:
             log.warning("took over a stale workspace lock left by %s", held["took_over"].get("what"))
         for run_id in ledger.mark_interrupted(ws):
@@ -93,14 +94,14 @@ def sweep(cfg: Config, start: str, end: str, grid: list[dict]) -> dict:
     root = sweeps.sweep_root(ws, start, end)
     root.mkdir(parents=True, exist_ok=True)
     settings = []
-    with workspace_lock(root / "lock", f"sweep {start}..{end}", cfg.runtime.lock_stale_seconds):
+    with workspace_lock(root / "lock", f"sweep {start}..{end}", cfg.runtime.lock_stale_seconds), \
+            runners.shared_cluster(cfg.runtime) as cluster:
         for k, overrides in enumerate(grid):
             scratch = root / f"s{k:02d}"
             scfg = sweeps.scratch_config(cfg, overrides, scratch)
             sweeps.prepare_scratch(ws, scratch, start, scfg.window.days)
             sweeps.write_setting(scratch, start, end, overrides)
-            run_night = nightly.with_options(timeout_seconds=scfg.runtime.flow_timeout_seconds,
-                                             flow_run_name=f"sweep s{k:02d}")
+            run_night = nightly_for(scfg, dask_address=cluster, flow_run_name=f"sweep s{k:02d}")
             entry = {"label": sweeps.label(overrides), "overrides": overrides, "nights": [], "error": None}
             previous = None
             for d in dates:

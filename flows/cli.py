@@ -25,6 +25,10 @@ REPO = Path(__file__).resolve().parent.parent
 ConfigOpt = typer.Option(None, "--config", "-c", help="TOML config (see configs/example.toml).")
 LogsOpt = typer.Option(None, "--logs", help="Logs folder or URI; overrides config and TAREWISE_LOGS.")
 WorkspaceOpt = typer.Option(None, "--workspace", help="Workspace folder; overrides config and TAREWISE_WORKSPACE.")
+RunnerOpt = typer.Option(None, "--runner", help="Task runner for the parallel parts of a night: 'thread' or 'dask' "
+                         "(overrides runtime.runner).")
+DaskAddressOpt = typer.Option(None, "--dask-address", help="Existing Dask scheduler, e.g. tcp://host:8786 "
+                              "(overrides runtime.dask_address; implies --runner dask).")
 
 
 def _prefect_env(workspace: str, verbose: bool = False) -> None:
@@ -39,9 +43,37 @@ def _prefect_env(workspace: str, verbose: bool = False) -> None:
 def load(config: Optional[Path], logs: Optional[str], workspace: Optional[str]):
     from tasks.config import ConfigError, load_config
     try:
-        return load_config(config, logs=logs, workspace=workspace)
+        cfg = load_config(config, logs=logs, workspace=workspace)
     except ConfigError as exc:
         err.print(f"[bold red]config error[/]: {exc}", markup=True, highlight=False)
+        raise typer.Exit(2)
+    ws = cfg.paths.workspace
+    if "://" in ws and not ws.startswith("file://"):
+        # Checked before anything touches the path (Prefect's home folder lives in the workspace).
+        err.print(f"[bold red]config error[/]: paths.workspace = {ws!r}: the workspace must be a local or "
+                  "shared POSIX folder (publishing a version relies on an atomic rename, which object stores "
+                  "lack); logs may live on an object store (paths.logs / --logs).", highlight=False)
+        raise typer.Exit(2)
+    return cfg.with_overrides(workspace=ws.removeprefix("file://")) if ws.startswith("file://") else cfg
+
+
+def with_runner(cfg, runner: Optional[str], dask_address: Optional[str]):
+    """``cfg`` with the command line's task-runner choice applied (validated like the config file)."""
+    updates: dict = {}
+    if dask_address:
+        updates.update({"runtime.runner": "dask", "runtime.dask_address": dask_address})
+    if runner:
+        if dask_address and runner != "dask":
+            err.print("--dask-address needs --runner dask (or no --runner)")
+            raise typer.Exit(2)
+        updates["runtime.runner"] = runner
+    if not updates:
+        return cfg
+    from tasks.config import ConfigError
+    try:
+        return cfg.updated(updates)
+    except ConfigError as exc:
+        err.print(f"[bold red]--runner[/]: {exc}", highlight=False)
         raise typer.Exit(2)
 
 
@@ -54,9 +86,10 @@ def _fail(exc: BaseException, what: str) -> None:
 def run(date: Optional[str] = typer.Option(None, "--date", "-d", help="Run date YYYY-MM-DD (default: yesterday "
                                           "in runtime.timezone)."),
         config: Optional[Path] = ConfigOpt, logs: Optional[str] = LogsOpt, workspace: Optional[str] = WorkspaceOpt,
+        runner: Optional[str] = RunnerOpt, dask_address: Optional[str] = DaskAddressOpt,
         verbose: bool = typer.Option(False, "--verbose", "-v")) -> None:
     """One nightly run. Exits non-zero on failure; the live version is then untouched."""
-    cfg = load(config, logs, workspace)
+    cfg = with_runner(load(config, logs, workspace), runner, dask_address)
     _prefect_env(cfg.paths.workspace, verbose)
     from tasks.lock import LockHeld, check_free
     from tasks.workspace import Workspace
@@ -65,10 +98,10 @@ def run(date: Optional[str] = typer.Option(None, "--date", "-d", help="Run date 
     except LockHeld as exc:
         err.print(f"[bold red]refused[/]: {exc}", highlight=False)
         raise typer.Exit(3)
-    from flows.nightly import nightly
+    from flows.nightly import nightly_for
     try:
         with console.status(f"nightly run for {date or 'yesterday'} ..."):
-            out = nightly.with_options(timeout_seconds=cfg.runtime.flow_timeout_seconds)(cfg=cfg, run_date=date)
+            out = nightly_for(cfg)(cfg=cfg, run_date=date)
     except Exception as exc:  # noqa: BLE001 - the CLI reports every failure the same way
         _fail(exc, "run")
     _print_night(out)
@@ -180,14 +213,14 @@ def demo(folder: Optional[Path] = typer.Option(None, "--dir", help="Folder for d
     if not dates:
         err.print(f"no dt=YYYY-MM-DD partitions under {logs}")
         raise typer.Exit(1)
-    from flows.nightly import nightly
+    from flows.nightly import nightly_for
     from rich.progress import Progress
     outs = []
     with Progress(console=console) as progress:
         bar = progress.add_task("demo nights", total=len(dates))
         for d in dates:
             try:
-                outs.append(nightly(cfg=cfg, run_date=d))
+                outs.append(nightly_for(cfg)(cfg=cfg, run_date=d))
             except Exception as exc:  # noqa: BLE001
                 _fail(exc, f"demo night {d}")
             progress.advance(bar)
@@ -294,9 +327,10 @@ def backfill(start: str = typer.Option(..., "--start", help="First date YYYY-MM-
                                                         "the range once per combination, each in a scratch "
                                                         "workspace, and print the held-out probe MAE table."),
              config: Optional[Path] = ConfigOpt, logs: Optional[str] = LogsOpt, workspace: Optional[str] = WorkspaceOpt,
+             runner: Optional[str] = RunnerOpt, dask_address: Optional[str] = DaskAddressOpt,
              verbose: bool = typer.Option(False, "--verbose", "-v")) -> None:
     """Replay past nights date by date, carrying the model forward; resumable, skips dates already done."""
-    cfg = load(config, logs, workspace)
+    cfg = with_runner(load(config, logs, workspace), runner, dask_address)
     from tasks.backfill_plan import LIVE_MODES, BackfillError, plan_backfill, typical_night_seconds
     from tasks.workspace import Workspace
     if live not in LIVE_MODES:

@@ -28,7 +28,7 @@ from prefect.deployments.runner import EntrypointType, RunnerDeployment
 from prefect.schedules import Cron
 
 from flows.backfill import backfill
-from flows.nightly import nightly
+from flows.nightly import nightly_for
 from tasks.config import Config, ConfigError, parse_config
 
 NIGHTLY_DEPLOYMENT = "nightly"
@@ -54,7 +54,7 @@ def scheduled_nightly(settings: dict, run_date: str | None = None) -> dict:
     if run_date is None:
         from prefect.runtime import flow_run
         run_date = night_for(flow_run.scheduled_start_time, cfg.runtime.timezone)
-    return nightly.with_options(timeout_seconds=cfg.runtime.flow_timeout_seconds)(cfg=cfg, run_date=run_date)
+    return nightly_for(cfg)(cfg=cfg, run_date=run_date)
 
 
 @flow(name="tarewise-scheduled-backfill")

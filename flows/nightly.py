@@ -9,7 +9,7 @@ from zoneinfo import ZoneInfo
 from prefect import flow, get_run_logger
 from prefect.artifacts import create_markdown_artifact, create_table_artifact
 
-from tasks import ledger, steps, versions
+from tasks import ledger, runners, steps, versions
 from tasks.config import Config
 from tasks.gate import decide
 from tasks.lock import workspace_lock
@@ -59,6 +59,15 @@ def nightly(cfg: Config, run_date: str | None = None, kind: str = "nightly", mak
     return _night(cfg, ws, run_date, kind, make_live, base_from)
 
 
+def nightly_for(cfg: Config, dask_address: str | None = None, **options):
+    """The nightly flow with the config's task runner (``runtime.runner``) and flow timeout; ``options``
+    are passed on to ``with_options`` (e.g. ``flow_run_name``). Every caller that runs nights from a config
+    (CLI, backfill, sweep, deployments) goes through here. ``dask_address``: a cluster shared by several
+    nights (``runners.shared_cluster``)."""
+    return nightly.with_options(task_runner=runners.task_runner(cfg.runtime, dask_address),
+                                timeout_seconds=cfg.runtime.flow_timeout_seconds, **options)
+
+
 def _night(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool, base_from: str | None) -> dict:
     log = get_run_logger()
     for name in versions.clean_staging(ws):
@@ -67,7 +76,10 @@ def _night(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool
     clock = _Clock()
     counts: dict = {}
     try:
-        result = _io(steps.ingest_partition, cfg)(cfg, run_date)
+        listing = _io(steps.list_partition, cfg)(cfg, run_date)
+        # Files of a partition are independent: read and row-checked side by side on the task runner.
+        reads = [_io(steps.read_log_file, cfg).submit(cfg, run_date, path) for path in listing.paths]
+        result = steps.validate_partition(cfg, listing, [f.result() for f in reads])
         counts = {"rows_read": result.rows_read, "rows_ingested": len(result.valid),
                   "rows_quarantined": len(result.rejected)}
         _io(steps.quarantine_and_store, cfg)(cfg, run_date, result)
@@ -82,6 +94,7 @@ def _night(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool
                               message=message)
             return {"run_date": run_date, "status": "skipped", "version_id": None, "message": message}
         base_id, base, base_shadow = _io(steps.load_base, cfg)(cfg, run_date, base_from)
+        clock.lap("window")
         night = steps.train(cfg, window, base, base_shadow)
         clock.lap("train")
 
@@ -94,7 +107,11 @@ def _night(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool
         log.info("gate: %s (%s)", "promote" if decision.promote else "hold", decision.reason)
         clock.lap("evaluate")
 
-        preds = steps.build_predictions(cfg, cand.checkpoint, window)
+        # Top-N lists in shards of whole scoring blocks, side by side on the task runner; joined in plan order.
+        shards = steps.plan_scoring(cfg, cand.checkpoint, window, 2 * runners.workers(cfg.runtime))
+        scored = [steps.score_users.submit(cfg, cand.checkpoint, shard) for shard in shards]
+        preds = steps.assemble_predictions(cand.checkpoint, [f.result() for f in scored])
+        clock.lap("predict")
         version_id = versions.new_version_id(ws, run_date)
         counts.update(window_ratings=len(window), window_users=int(window["user_id"].nunique()),
                       window_items=int(window["item_id"].nunique()), new_users=cand.new_users,
@@ -119,7 +136,9 @@ def _night(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool
             apply_retention_logged(cfg, ws, run_date, log)
         return {"run_date": run_date, "status": "done", "version_id": version_id, "state": state,
                 "gate": decision.to_dict(), "evaluation": evaluation, "durations": clock.durations,
-                "counts": counts, "alerts": summary.get("alerts", [])}
+                "counts": counts, "alerts": summary.get("alerts", []),
+                "epoch_seconds": {"candidate": [r["seconds"] for r in cand.rounds],
+                                  "shadow": [r["seconds"] for r in night.shadow.rounds] if night.shadow else []}}
     except BaseException as exc:
         ledger.finish_run(ws, run_id, "failed", rows_ingested=counts.get("rows_ingested"),
                           rows_quarantined=counts.get("rows_quarantined"), durations=clock.durations,

@@ -131,6 +131,10 @@ class DebiasConfig(_Section):
     users_per_step: int = Field(256, ge=1, description="Cap on adjusted users per training step; a round visits "
                                 "every adjusted user once, spread evenly over its mini-batches.")
     memory_budget_mb: float = Field(256.0, gt=0.0, description="Cap on the users x items block held at once.")
+    max_reference_users: int = Field(1024, ge=0, description="Cap on reference users per round: when more are "
+                                     "drawn, a uniform sample of this many is used (redrawn every round). Each "
+                                     "adjusted user is compared with every reference user, so without a cap a "
+                                     "round costs users x references; 0 = no cap.")
     probe_target_weight: float = Field(0.0, ge=0.0, description="Weight of the probe-rating ECDF as an extra "
                                        "target of the calibration term (0 = reference users only).")
     combine_with: Literal["none", "probe_upweight", "ips", "snips", "recalibrate"] = Field(
@@ -189,8 +193,14 @@ class RuntimeConfig(_Section):
     timezone: str = Field("UTC", description="IANA zone; 'yesterday' and the schedule use it.")
     schedule: str = Field("30 2 * * *", description="Cron for the nightly deployment.")
     shadow: bool = Field(True, description="Train a plain shadow model beside the candidate.")
-    runner: Literal["thread", "dask"] = Field("thread", description="Prefect task runner.")
-    dask_address: str = Field("", description="Existing Dask scheduler address; empty = local cluster.")
+    runner: Literal["thread", "dask"] = Field("thread", description="Prefect task runner for the parallel parts "
+                                             "of a night (files of a partition, blocks of users to score): "
+                                             "'thread' = a thread pool in the run's process; 'dask' = "
+                                             "prefect-dask (see tasks/runners.py).")
+    dask_address: str = Field("", description="Existing Dask scheduler address (e.g. tcp://host:8786); empty = "
+                              "a local in-process cluster of runtime.workers workers.")
+    workers: int = Field(0, ge=0, le=1024, description="Parallel tasks (threads or local Dask workers); 0 = the "
+                         "machine's CPU count. Each scoring task holds up to debias.memory_budget_mb.")
     flow_timeout_seconds: int = Field(6 * 3600, ge=60, description="A nightly run taking longer is failed.")
     io_retries: int = Field(2, ge=0, le=20, description="Retries of a task after a transient I/O error.")
     lock_stale_seconds: int = Field(4 * 3600, ge=60, description="A store lock older than this with a dead "

@@ -32,8 +32,9 @@ def prediction_sample(cand: Checkpoint, live: Checkpoint | None, window: pd.Data
     """Candidate and live predictions on one uniform sample of (active user, active item) pairs, and
     both models' rating profiles (soft CDF over a shared uniform item sample) for a user sample."""
     rng = np.random.default_rng(seed)
-    users = np.unique(window["user_id"].to_numpy(dtype=object))
-    items = np.unique(window["item_id"].to_numpy(dtype=object))
+    # Distinct ids, then sorted: the same arrays as np.unique over every row (which took 45 s at 10M ratings).
+    users = np.sort(np.asarray(pd.unique(window["user_id"]), dtype=object))
+    items = np.sort(np.asarray(pd.unique(window["item_id"]), dtype=object))
     pu, pi = rng.choice(users, SAMPLE_PAIRS), rng.choice(items, SAMPLE_PAIRS)
     out = {"pred_candidate": cand.score(pu, pi)[0], "pred_live": live.score(pu, pi)[0] if live else None}
     su = rng.choice(users, min(SAMPLE_USERS, len(users)), replace=False)

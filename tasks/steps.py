@@ -33,14 +33,26 @@ IO = dict(retries=2, retry_delay_seconds=[1, 5], retry_condition_fn=transient_on
 COMPUTE = dict(cache_policy=NO_CACHE)
 
 
-@task(name="ingest-partition", **IO)
-def ingest_partition(cfg: Config, run_date: str) -> ingest.IngestResult:
-    log = get_run_logger()
-    result = ingest.read_partition(cfg.paths.logs, run_date, cfg)
-    if result.missing:
-        log.warning("partition for %s is missing; skipped (input.missing_partition = 'skip')", run_date)
-    log.info("read %d rows from %d file(s): %d valid, %d rejected", result.rows_read, len(result.files),
-             len(result.valid), len(result.rejected))
+@task(name="list-partition", **IO)
+def list_partition(cfg: Config, run_date: str) -> ingest.PartitionListing:
+    listing = ingest.list_partition(cfg.paths.logs, run_date, cfg)
+    if listing.missing:
+        get_run_logger().warning("partition for %s is missing; skipped (input.missing_partition = 'skip')",
+                                 run_date)
+    return listing
+
+
+@task(name="read-log-file", **IO)
+def read_log_file(cfg: Config, run_date: str, path: str) -> ingest.CheckedFile:
+    return ingest.read_log_file(cfg.paths.logs, path, run_date, cfg)
+
+
+@task(name="validate-partition", **COMPUTE)
+def validate_partition(cfg: Config, listing: ingest.PartitionListing,
+                       checked: list[ingest.CheckedFile]) -> ingest.IngestResult:
+    result = ingest.combine_files(listing, checked, cfg)
+    get_run_logger().info("read %d rows from %d file(s): %d valid, %d rejected", result.rows_read,
+                          len(result.files), len(result.valid), len(result.rejected))
     return result
 
 
@@ -89,9 +101,19 @@ def evaluate(cfg: Config, heldout: pd.DataFrame, segments: pd.Series,
     return evaluation.evaluate_models(heldout, segments, models, cfg.evaluate, cfg.model.seed)
 
 
-@task(name="build-predictions", **COMPUTE)
-def build_predictions(cfg: Config, ckpt: Checkpoint, window: pd.DataFrame) -> pd.DataFrame:
-    return predictions.build_predictions(ckpt, window, cfg.publish.top_n, cfg.debias.memory_budget_mb)
+@task(name="plan-scoring", **COMPUTE)
+def plan_scoring(cfg: Config, ckpt: Checkpoint, window: pd.DataFrame, shards: int) -> list[predictions.ScoringShard]:
+    return predictions.plan_shards(ckpt, window, cfg.debias.memory_budget_mb, shards)
+
+
+@task(name="score-users", **COMPUTE)
+def score_users(cfg: Config, ckpt: Checkpoint, shard: predictions.ScoringShard) -> tuple:
+    return predictions.score_shard(ckpt, shard, cfg.publish.top_n, cfg.debias.memory_budget_mb)
+
+
+@task(name="assemble-predictions", **COMPUTE)
+def assemble_predictions(ckpt: Checkpoint, parts: list[tuple]) -> pd.DataFrame:
+    return predictions.assemble(ckpt, parts)
 
 
 @task(name="publish-version", **IO)

@@ -37,3 +37,16 @@ def draw_reference_users(probabilities: pd.Series, rng: np.random.Generator) -> 
         return np.empty(0, dtype=np.int64)
     hit = rng.random(len(probabilities)) < probabilities.to_numpy()
     return np.sort(probabilities.index.to_numpy()[hit].astype(np.int64))
+
+
+def cap_reference_users(drawn: np.ndarray, cap: int, rng: np.random.Generator) -> np.ndarray:
+    """At most ``cap`` of the ``drawn`` reference users: a uniform sample without replacement, sorted.
+
+    Returns ``drawn`` itself (and draws nothing from ``rng``) when ``cap`` is 0 or not exceeded, so rounds
+    under the cap are exactly what they were without one. A uniform sample of a Bernoulli draw is still a
+    draw in which lower probe error means a higher chance; every reference user keeps the same chance of
+    being in the sample.
+    """
+    if cap <= 0 or len(drawn) <= cap:
+        return drawn
+    return np.sort(rng.choice(drawn, cap, replace=False))

@@ -34,7 +34,8 @@ from .model import BiasedMF
 from .profiles import empirical_cdf, soft_cdf, soft_cdf_chunked, thresholds
 from .propensity import naive_bayes_propensity, rating_weights
 from .recalibration import MonotoneMap
-from .reference import draw_reference_users, probe_errors, reference_probabilities
+from .reference import cap_reference_users, draw_reference_users, probe_errors, reference_probabilities
+from .row_adam import RowAdam
 from .splits import heldout_mask
 from . import per_user
 
@@ -56,6 +57,49 @@ class FitResult:
     new_users: int
     new_items: int
     notes: list[str] = field(default_factory=list)
+
+
+# ---------------------------------------------------------------------------------------------
+# One step's loss (shared with the data-parallel trainer, tasks/engine/distributed.py)
+# ---------------------------------------------------------------------------------------------
+
+@dataclass
+class StepCalibration:
+    """What a step needs for the distribution-calibration term: thresholds ``t`` [K], sharpness, the
+    round's reference profiles [R, K] (or None), the optional extra target [K] and its weight, the term's
+    weight (lambda) and the round's scale ``n_steps / visits``."""
+
+    t: torch.Tensor
+    sharpness: float
+    references: torch.Tensor | None
+    extra_target: torch.Tensor | None
+    extra_weight: float
+    weight: float
+    scale: float
+
+
+def step_loss(model, u: torch.Tensor, i: torch.Tensor, r: torch.Tensor, w: torch.Tensor, norm: float,
+              weight_decay: float, pick: torch.Tensor | None = None, items: torch.Tensor | None = None,
+              calib: StepCalibration | None = None, se_norm: float | None = None
+              ) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor | None]:
+    """Loss of one mini-batch: ``sum(w * (pred - r)^2) / se_norm + weight_decay * sum(penalty) / norm``
+    plus, when ``pick`` (adjusted users [P]) is given, ``weight * scale * sum_u term_u`` over their profiles
+    on ``items`` [S]. ``norm``: the step's rating count (the global count in data-parallel training);
+    ``se_norm`` defaults to it (the weight sum for self-normalised IPS).
+    Returns ``(loss, squared-error part, summed calibration term or None)``, the last two detached."""
+    if pick is not None and len(pick):
+        pred, penalty, block = model.step_outputs(u, i, pick, items)
+    else:
+        pred, penalty, block = model.step_outputs(u, i)
+    se = (w * (pred - r) ** 2).sum() / (norm if se_norm is None else se_norm)
+    loss = se + weight_decay * penalty.sum() / norm
+    term = None
+    if block is not None:
+        term = calibration_term_per_user(soft_cdf(block, calib.t, calib.sharpness), calib.references,
+                                         calib.extra_target, calib.extra_weight).sum()
+        loss = loss + calib.weight * term * calib.scale
+        term = term.detach()
+    return loss, se.detach(), term
 
 
 def _check_frame(df: pd.DataFrame, name: str, scale: ScaleConfig) -> pd.DataFrame:
@@ -197,7 +241,8 @@ def fit(organic: pd.DataFrame, probe: pd.DataFrame, scale: ScaleConfig, model_cf
         with torch.no_grad():
             return model(pf_u, pf_i).double().clamp(scale.min, scale.max).numpy()
 
-    optimiser = torch.optim.SparseAdam(list(model.parameters()), lr=model_cfg.learning_rate)
+    # RowAdam: torch.optim.SparseAdam's update bit for bit, about 40% cheaper per step (tasks/engine/row_adam.py).
+    optimiser = RowAdam(list(model.parameters()), lr=model_cfg.learning_rate)
     n = len(T_r)
     bs = min(model_cfg.batch_size, n)
     n_steps = -(-n // bs)
@@ -214,7 +259,11 @@ def fit(organic: pd.DataFrame, probe: pd.DataFrame, scale: ScaleConfig, model_cf
             n_with_error = len(errs)
             probs = reference_probabilities(errs, debias.reference_temperature, debias.reference_p_min,
                                             debias.reference_p_max)
-            ref_idx = torch.from_numpy(draw_reference_users(probs, rng))
+            drawn = draw_reference_users(probs, rng)
+            ref_idx = torch.from_numpy(cap_reference_users(drawn, debias.max_reference_users, rng))
+            if len(ref_idx) < len(drawn) and not any(n.startswith("reference users capped") for n in notes):
+                notes.append(f"reference users capped at {len(ref_idx)} of {len(drawn)} drawn "
+                             "(debias.max_reference_users)")
             is_ref = torch.zeros(len(users), dtype=torch.bool)
             is_ref[ref_idx] = True
             adjusted = active_users[~is_ref[active_users]]
@@ -238,22 +287,19 @@ def fit(organic: pd.DataFrame, probe: pd.DataFrame, scale: ScaleConfig, model_cf
             reps = -(-visits // len(adjusted))
             visit_order = torch.cat([adjusted[torch.randperm(len(adjusted), generator=gen)]
                                      for _ in range(reps)])[:visits]
+            calib = StepCalibration(t, s, ref_profiles, probe_target, debias.probe_target_weight,
+                                    debias.calibration_weight, n_steps / visits)
+        else:
+            calib = None
         se_sum, term_sum, steps = 0.0, 0.0, 0
         for start in range(0, n, bs):
             b = perm[start:start + bs]
             u, i, r, w = T_u[b], T_i[b], T_r[b], T_w[b]
             pick = visit_order[steps * visits // n_steps:(steps + 1) * visits // n_steps] if status == "on" else None
-            if pick is not None and len(pick):
-                pred, penalty, block = model.step_outputs(u, i, pick, step_items())
-            else:
-                pred, penalty, block = model.step_outputs(u, i)
-            err2 = (pred - r) ** 2
-            se = (w * err2).sum() / (w.sum() if self_normalise else len(b))
-            loss = se + model_cfg.weight_decay * penalty.mean()
-            if block is not None:
-                term = calibration_term_per_user(soft_cdf(block, t, s), ref_profiles, probe_target,
-                                                 debias.probe_target_weight).sum()
-                loss = loss + debias.calibration_weight * term * (n_steps / visits)
+            loss, se, term = step_loss(model, u, i, r, w, len(b), model_cfg.weight_decay, pick,
+                                       step_items() if pick is not None and len(pick) else None, calib,
+                                       se_norm=w.sum() if self_normalise else None)
+            if term is not None:
                 term_sum += term.item()
             optimiser.zero_grad(set_to_none=True)
             loss.backward()
