@@ -295,7 +295,7 @@ def render_plot(results: dict, path: Path) -> None:
     if not rows:
         return
     x = [r["counts"]["window_ratings"] for r in rows]
-    fig, (a, b) = plt.subplots(1, 2, figsize=(11, 4.2))
+    fig, (a, b) = plt.subplots(1, 2, figsize=(12.5, 4.4), layout="constrained")
     for s in STAGES:
         a.plot(x, [max(r["durations"].get(s, 0), 1e-2) for r in rows], marker="o", label=s)
     a.plot(x, [r["night_s"] for r in rows], marker="s", color="black", lw=2, label="whole night")
@@ -303,7 +303,7 @@ def render_plot(results: dict, path: Path) -> None:
     a.plot(x, [ref * v / x[0] for v in x], ls=":", color="grey", label="slope 1 (linear)")
     a.set(xscale="log", yscale="log", xlabel="ratings in the 30-day window", ylabel="wall seconds",
           title="Measured night: seconds per stage")
-    a.legend(fontsize=7, ncol=2, loc="lower right")
+    a.legend(fontsize=7, loc="center left", bbox_to_anchor=(1.0, 0.5))
     b.plot(x, [r["peak_rss_mb"] for r in rows], marker="o", label="peak RSS")
     b.plot(x, [r["counts"]["window_users"] * r["counts"]["window_items"] * 4 / 2**20 for r in rows], marker="x",
            ls="--", label="users x items float32 (not allocated)")
@@ -312,7 +312,6 @@ def render_plot(results: dict, path: Path) -> None:
     b.set(xscale="log", yscale="log", xlabel="ratings in the 30-day window", ylabel="MB", title="Memory")
     b.legend(fontsize=7)
     fig.suptitle("tarewise nightly benchmark (invented data)", fontsize=10)
-    fig.tight_layout()
     path.parent.mkdir(parents=True, exist_ok=True)
     fig.savefig(path, dpi=110)
     plt.close(fig)

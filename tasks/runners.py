@@ -54,7 +54,7 @@ def task_runner(runtime: RuntimeConfig, dask_address: str | None = None):
             from prefect_dask import DaskTaskRunner
         except ImportError as exc:  # an optional dependency: say which package to install
             raise RunnerError("runtime.runner = 'dask' needs the prefect-dask package "
-                              "(pip install prefect-dask)") from exc
+                              "(pip install 'tarewise[dask]', or pip install prefect-dask)") from exc
         _dask_log_level()
         address = dask_address or runtime.dask_address
         if address:
