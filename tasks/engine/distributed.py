@@ -47,7 +47,7 @@ from . import per_user
 from .checkpoint import Checkpoint
 from .idmap import IdMap
 from .model import BiasedMF
-from .profiles import empirical_cdf, soft_cdf, soft_cdf_chunked, thresholds
+from .profiles import ProfileSampler, empirical_cdf
 from .propensity import naive_bayes_propensity, rating_weights
 from .recalibration import MonotoneMap
 from .reference import cap_reference_users, draw_reference_users, probe_errors, reference_probabilities
@@ -245,32 +245,13 @@ def fit_distributed(organic: pd.DataFrame, probe: pd.DataFrame, scale: ScaleConf
     my_bs = local_bs[rank]
 
     calibrated = method == "calibrated" and debias.calibration_weight > 0
-    t = thresholds(scale.min, scale.max, debias.profile_points)
-    s_ = debias.profile_sharpness
+    profiles = ProfileSampler(scale.min, scale.max, debias, len(items), calibrated)
+    t, s_ = profiles.t, profiles.sharpness
+    if profiles.note:
+        notes.append(profiles.note)
     my_active = torch.from_numpy(np.unique(tr_u[mine & (np.arange(len(tr_u)) < len(organic))]))
     probe_target = (empirical_cdf(torch.from_numpy(all_pf_r).float(), t)
                     if calibrated and debias.probe_target_weight > 0 and len(all_pf_r) else None)
-    n_items = len(items)
-    sample = debias.profile_item_sample
-    budget = debias.memory_budget_mb * 2**20
-    if calibrated and sample == 0 and debias.users_per_step * n_items * 4 * (len(t) + 3) > budget:
-        sample = max(8, int(budget // (debias.users_per_step * 4 * (len(t) + 3))))
-        notes.append(f"profile over all {n_items} items exceeds memory_budget_mb; sampling {sample} items per user")
-
-    def target_profiles(u_idx: torch.Tensor) -> torch.Tensor:
-        k = len(t)
-        if len(u_idx) == 0:
-            return torch.zeros((0, k))
-        if sample > 0:
-            rows = max(1, int(budget // (sample * 4 * (k + 3))))
-            with torch.no_grad():
-                return torch.cat([soft_cdf(model.predict_sampled(c, torch.randint(0, n_items, (len(c), sample),
-                                                                                   generator=gen)), t, s_)
-                                  for c in torch.split(u_idx, rows)])
-        return soft_cdf_chunked(model.predict_block, u_idx, n_items, t, s_, budget)
-
-    def step_items() -> torch.Tensor:
-        return torch.randint(0, n_items, (sample,), generator=gen) if sample > 0 else torch.arange(n_items)
 
     def val_mae() -> float:
         with torch.no_grad():
@@ -302,7 +283,7 @@ def fit_distributed(organic: pd.DataFrame, probe: pd.DataFrame, scale: ScaleConf
             is_ref = torch.zeros(len(users), dtype=torch.bool)
             is_ref[my_refs] = True
             adjusted = my_active[~is_ref[my_active]]
-            ref_profiles = all_gather_rows(target_profiles(my_refs))      # every rank: all reference users
+            ref_profiles = all_gather_rows(profiles.targets(model, my_refs, gen))      # every rank: all reference users
             n_refs = ref_profiles.shape[0]
             n_with_error, n_adjusted = (int(x) for x in all_sum(float(len(errs)), float(len(adjusted))))
             if n_refs == 0 and probe_target is None:
@@ -329,7 +310,7 @@ def fit_distributed(organic: pd.DataFrame, probe: pd.DataFrame, scale: ScaleConf
             pick = visit_order[step * visits // n_steps:(step + 1) * visits // n_steps] if calib else None
             norm = float(step_count[step])
             loss, se, term = step_loss(model, T_u[b], T_i[b], T_r[b], T_w[b], norm, model_cfg.weight_decay,
-                                       pick, step_items() if pick is not None and len(pick) else None, calib)
+                                       pick, profiles.step_items(gen) if pick is not None and len(pick) else None, calib)
             optimiser.zero_grad(set_to_none=True)
             loss.backward()
             if world > 1:          # one worker: its gradient is the sum already

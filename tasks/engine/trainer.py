@@ -31,7 +31,7 @@ from .calibration import calibration_term_per_user
 from .checkpoint import Checkpoint
 from .idmap import IdMap
 from .model import BiasedMF
-from .profiles import empirical_cdf, soft_cdf, soft_cdf_chunked, thresholds
+from .profiles import ProfileSampler, empirical_cdf, soft_cdf
 from .propensity import naive_bayes_propensity, rating_weights
 from .recalibration import MonotoneMap
 from .reference import cap_reference_users, draw_reference_users, probe_errors, reference_probabilities
@@ -203,39 +203,13 @@ def fit(organic: pd.DataFrame, probe: pd.DataFrame, scale: ScaleConfig, model_cf
 
     # ---- calibration setup -------------------------------------------------------------------
     calibrated = method == "calibrated" and debias.calibration_weight > 0
-    t = thresholds(scale.min, scale.max, debias.profile_points)
-    s = debias.profile_sharpness
+    profiles = ProfileSampler(scale.min, scale.max, debias, len(items), calibrated)
+    t, s = profiles.t, profiles.sharpness
+    if profiles.note:
+        notes.append(profiles.note)
     active_users = torch.from_numpy(np.unique(users.lookup(organic["user_id"])))
     probe_target = (empirical_cdf(torch.from_numpy(pf_r).float(), t)
                     if calibrated and debias.probe_target_weight > 0 and len(pf_r) else None)
-    n_items = len(items)
-    sample = debias.profile_item_sample
-    budget = debias.memory_budget_mb * 2**20
-    if calibrated and sample == 0 and debias.users_per_step * n_items * 4 * (len(t) + 3) > budget:
-        # Exact all-item profiles with gradient would exceed the budget: fall back to the largest
-        # uniform item sample that fits, and say so (the estimate stays unbiased).
-        sample = max(8, int(budget // (debias.users_per_step * 4 * (len(t) + 3))))
-        notes.append(f"profile over all {n_items} items exceeds memory_budget_mb; sampling {sample} items per user")
-
-    def target_profiles(u_idx: torch.Tensor) -> torch.Tensor:
-        """Reference users' profiles (no gradient: they are targets)."""
-        if sample > 0:
-            # An independent uniform item sample per user, in user chunks within the budget.
-            rows = max(1, int(budget // (sample * 4 * (len(t) + 3))))
-            with torch.no_grad():
-                return torch.cat([soft_cdf(model.predict_sampled(c, torch.randint(0, n_items, (len(c), sample),
-                                                                                   generator=gen)), t, s)
-                                  for c in torch.split(u_idx, rows)])
-        return soft_cdf_chunked(model.predict_block, u_idx, n_items, t, s, budget)
-
-    def step_items() -> torch.Tensor:
-        """Items of the adjusted users' profiles in one step.
-
-        One uniform sample shared by the step's users: each user's profile is still a mean over a uniform
-        item sample (unbiased), but only ``sample`` item rows get a gradient instead of users x sample,
-        which makes the sparse backward and SparseAdam step ~5x cheaper than independent samples.
-        """
-        return torch.randint(0, n_items, (sample,), generator=gen) if sample > 0 else torch.arange(n_items)
 
     def predict_fit() -> np.ndarray:
         with torch.no_grad():
@@ -273,7 +247,7 @@ def fit(organic: pd.DataFrame, probe: pd.DataFrame, scale: ScaleConfig, model_cf
                 status = "skipped: every active user is a reference user"
             else:
                 status = "on"
-            ref_profiles = target_profiles(ref_idx) if len(ref_idx) else None
+            ref_profiles = profiles.targets(model, ref_idx, gen) if len(ref_idx) else None
         perm = torch.randperm(n, generator=gen)
         if status == "on":
             # A round visits `visits` adjusted users (every one once, cycling when there are fewer users
@@ -297,7 +271,7 @@ def fit(organic: pd.DataFrame, probe: pd.DataFrame, scale: ScaleConfig, model_cf
             u, i, r, w = T_u[b], T_i[b], T_r[b], T_w[b]
             pick = visit_order[steps * visits // n_steps:(steps + 1) * visits // n_steps] if status == "on" else None
             loss, se, term = step_loss(model, u, i, r, w, len(b), model_cfg.weight_decay, pick,
-                                       step_items() if pick is not None and len(pick) else None, calib,
+                                       profiles.step_items(gen) if pick is not None and len(pick) else None, calib,
                                        se_norm=w.sum() if self_normalise else None)
             if term is not None:
                 term_sum += term.item()
