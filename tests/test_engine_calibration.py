@@ -167,3 +167,23 @@ def test_pairwise_distance_matches_scipy_even_for_close_profiles() -> None:
     assert d.dtype == torch.float32
     # Reference: scipy.spatial.distance.cdist (Euclidean, float64) on the same float32 values.
     np.testing.assert_allclose(d.numpy(), cdist(a.double().numpy(), b.double().numpy()), rtol=1e-5)
+
+
+def test_hand_written_backward_matches_autograd_of_the_formula_in_float32() -> None:
+    """Training runs in float32 with profiles lying close together: the closed-form backward must agree with
+    autograd through the plain formula (Gram distances in float64, as the forward computes them)."""
+    g = torch.Generator().manual_seed(21)
+    r = torch.rand(300, 10, generator=g).sort(dim=1).values
+    # adjusted profiles near some references (distances ~1e-3..1e-1) and one exactly on a reference
+    a = (r[:40] + 0.01 * torch.randn(40, 10, generator=g)).clamp(0, 1)
+    a[0] = r[0]
+    a.requires_grad_(True)
+    calibration_term_per_user(a, r).sum().backward()
+    fused = a.grad.clone()
+    b = a.detach().clone().requires_grad_(True)
+    d = pairwise_distance(b, r)
+    ((torch.softmax(1.0 / d, dim=1) * d).sum(dim=1)).sum().backward()
+    # Reference: torch autograd of the same expression (float32 softmax over float64-computed distances).
+    torch.testing.assert_close(fused, b.grad, rtol=1e-4, atol=1e-4)
+    torch.testing.assert_close(calibration_term_per_user(a, r).detach(),
+                               (torch.softmax(1.0 / d, dim=1) * d).sum(dim=1).detach(), rtol=1e-6, atol=1e-7)

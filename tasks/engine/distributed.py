@@ -259,7 +259,7 @@ def fit_distributed(organic: pd.DataFrame, probe: pd.DataFrame, scale: ScaleConf
         err, cnt = all_sum(float(np.abs(pred - pf_r).sum()), float(len(pf_r)))
         return err / cnt if cnt else float("nan")
 
-    # RowAdam: torch.optim.SparseAdam's update bit for bit, about 40% cheaper per step (tasks/engine/row_adam.py).
+    # RowAdam: torch.optim.SparseAdam's update (to float rounding), about 40% cheaper per step (tasks/engine/row_adam.py).
     optimiser = RowAdam(list(model.parameters()), lr=model_cfg.learning_rate)
     rounds: list[dict] = []
     draws: list[int] = []
