@@ -36,8 +36,7 @@ class RowAdam(torch.optim.Optimizer):
     @torch.no_grad()
     def step(self, closure=None):  # noqa: D401 - the Optimizer interface
         loss = closure() if closure is not None else None
-        last_raw: torch.Tensor | None = None      # the previous table's raw row indices and their merge
-        last_merge: tuple[torch.Tensor, torch.Tensor] | None = None
+        merges: list[tuple[torch.Tensor, tuple[torch.Tensor, torch.Tensor]]] = []   # this step's (raw rows, merge)
         for group in self.param_groups:
             lr, (beta1, beta2), eps = group["lr"], group["betas"], group["eps"]
             for p in group["params"]:
@@ -48,9 +47,11 @@ class RowAdam(torch.optim.Optimizer):
                     # The update is non-linear: one summed entry per row. Tables looked up with the same
                     # index tensor (a user's factors and bias) share one sort instead of one each.
                     raw = grad._indices()[0]
-                    if last_raw is None or raw.shape != last_raw.shape or not torch.equal(raw, last_raw):
-                        last_raw, last_merge = raw, torch.unique(raw, sorted=True, return_inverse=True)
-                    rows, inverse = last_merge
+                    merge = next((m for r, m in merges if r.shape == raw.shape and torch.equal(r, raw)), None)
+                    if merge is None:
+                        merge = torch.unique(raw, sorted=True, return_inverse=True)
+                        merges.append((raw, merge))
+                    rows, inverse = merge
                     values = grad._values().new_zeros((len(rows),) + grad._values().shape[1:])
                     values.index_add_(0, inverse, grad._values())
                 else:
