@@ -86,12 +86,18 @@ _VALID_SCHEMA = schemas.STORE.set(schemas.STORE.get_field_index("input_file"),
                                   pa.field("input_file", pa.dictionary(pa.int32(), pa.string()), nullable=False))
 
 
+# Converting an empty Arrow table to pandas costs ~1 ms (dtype reconstruction), paid on every clean file;
+# the empty frames are built once and copied.
+_EMPTY_VALID = _VALID_SCHEMA.empty_table().to_pandas()
+_EMPTY_REJECTED = schemas.QUARANTINE.empty_table().to_pandas()
+
+
 def empty_valid() -> pd.DataFrame:
-    return _VALID_SCHEMA.empty_table().to_pandas()
+    return _EMPTY_VALID.copy()
 
 
 def empty_rejected() -> pd.DataFrame:
-    return schemas.QUARANTINE.empty_table().to_pandas()
+    return _EMPTY_REJECTED.copy()
 
 
 def parse_run_date(run_date: str) -> dt.date:
