@@ -168,7 +168,7 @@ def run_case(size: str, logs: Path, work: Path, method: str, seed_epochs: int, r
         t1 = time.perf_counter()
         ingest.write_quarantine(ws, d, res.rejected)
         ingest.check_rejected_share(res, cfg)
-        store.write_partition(ws, d, res.valid)
+        store.write_partition(ws, d, res.valid_table)
         t_read += t1 - t0
         t_store += time.perf_counter() - t1
         rows += res.rows_read

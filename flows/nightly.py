@@ -80,7 +80,7 @@ def _night(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool
         # Files of a partition are independent: read and row-checked side by side on the task runner.
         reads = [_io(steps.read_log_file, cfg).submit(cfg, run_date, path) for path in listing.paths]
         result = steps.validate_partition(cfg, listing, [f.result() for f in reads])
-        counts = {"rows_read": result.rows_read, "rows_ingested": len(result.valid),
+        counts = {"rows_read": result.rows_read, "rows_ingested": result.rows_valid,
                   "rows_quarantined": len(result.rejected)}
         _io(steps.quarantine_and_store, cfg)(cfg, run_date, result)
         clock.lap("ingest")

@@ -63,17 +63,27 @@ class IngestResult:
     """
 
     run_date: str
-    valid: pd.DataFrame
+    valid_table: pa.Table
     rejected: pd.DataFrame
     files: list[dict]
     rows_read: int
     missing: bool = False
     ignored: list[str] = field(default_factory=list)
     reason_counts: dict[str, int] = field(default_factory=dict)
+    _valid_df: pd.DataFrame | None = field(default=None, init=False, repr=False, compare=False)
+
+    @property
+    def valid(self) -> pd.DataFrame:
+        """The valid rows as a pandas frame, converted on first use. The night itself stores
+        ``valid_table`` directly (Arrow in, Arrow out): converting a day to pandas and back cost about
+        as much as validating it."""
+        if self._valid_df is None:
+            self._valid_df = self.valid_table.to_pandas()
+        return self._valid_df
 
     @property
     def rows_valid(self) -> int:
-        return len(self.valid)
+        return self.valid_table.num_rows
 
     @property
     def rows_rejected(self) -> int:
@@ -87,13 +97,8 @@ _VALID_SCHEMA = schemas.STORE.set(schemas.STORE.get_field_index("input_file"),
 
 
 # Converting an empty Arrow table to pandas costs ~1 ms (dtype reconstruction), paid on every clean file;
-# the empty frames are built once and copied.
-_EMPTY_VALID = _VALID_SCHEMA.empty_table().to_pandas()
+# the empty frame is built once and copied.
 _EMPTY_REJECTED = schemas.QUARANTINE.empty_table().to_pandas()
-
-
-def empty_valid() -> pd.DataFrame:
-    return _EMPTY_VALID.copy()
 
 
 def empty_rejected() -> pd.DataFrame:
@@ -625,7 +630,7 @@ def combine_files(listing: PartitionListing, checked: list[CheckedFile], cfg: Co
     duplicates across the whole partition, splits valid rows from quarantined ones."""
     run_date = listing.run_date
     if listing.missing:
-        return IngestResult(run_date, empty_valid(), empty_rejected(), [], 0, missing=True,
+        return IngestResult(run_date, _VALID_SCHEMA.empty_table(), empty_rejected(), [], 0, missing=True,
                             ignored=listing.ignored)
     if [c.path for c in checked] != listing.paths:
         raise ValueError(f"partition {listing.part}: checked files do not match the listing")
@@ -674,7 +679,7 @@ def combine_files(listing: PartitionListing, checked: list[CheckedFile], cfg: Co
     phrases = _reasons(cfg)
     bad_rows = np.flatnonzero(bad)
     counts = Counter({phrases[k]: int(masks[k][bad_rows].sum()) for k in _ORDER})
-    return IngestResult(run_date, valid_t.to_pandas(), rejected, files, rows_read, ignored=listing.ignored,
+    return IngestResult(run_date, valid_t, rejected, files, rows_read, ignored=listing.ignored,
                         reason_counts={r: n for r, n in counts.most_common() if n})
 
 

@@ -58,7 +58,7 @@ def report_night(cfg: Config, ws: Workspace, run_date: str, window: pd.DataFrame
     ``{"markdown", "table", "alerts" (one line each), "report" (html path)}``."""
     cand = night.candidate
     tonight = window[window["dt"].astype(str) == run_date]
-    volumes = {"rows_read": ingested.rows_read, "rows_ingested": len(ingested.valid),
+    volumes = {"rows_read": ingested.rows_read, "rows_ingested": ingested.rows_valid,
                "rows_quarantined": len(ingested.rejected),
                "quarantined_by_reason": rejected_by_reason(ingested.rejected),
                "new_users": cand.new_users, "new_items": cand.new_items,

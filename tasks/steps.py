@@ -52,7 +52,7 @@ def validate_partition(cfg: Config, listing: ingest.PartitionListing,
                        checked: list[ingest.CheckedFile]) -> ingest.IngestResult:
     result = ingest.combine_files(listing, checked, cfg)
     get_run_logger().info("read %d rows from %d file(s): %d valid, %d rejected", result.rows_read,
-                          len(result.files), len(result.valid), len(result.rejected))
+                          len(result.files), result.rows_valid, len(result.rejected))
     return result
 
 
@@ -63,7 +63,7 @@ def quarantine_and_store(cfg: Config, run_date: str, result: ingest.IngestResult
     ingest.write_quarantine(ws, run_date, result.rejected)
     ingest.check_rejected_share(result, cfg)
     if not result.missing:
-        store.write_partition(ws, run_date, result.valid)
+        store.write_partition(ws, run_date, result.valid_table)
 
 
 @task(name="read-window", **IO)

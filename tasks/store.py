@@ -126,11 +126,15 @@ def latest_mask(table: pa.Table) -> np.ndarray:
     return keep
 
 
-def _to_store_table(valid_df: pd.DataFrame) -> pa.Table:
-    missing = [c for c in schemas.STORE.names if c not in valid_df.columns]
+def _to_store_table(valid: pd.DataFrame | pa.Table) -> pa.Table:
+    present = valid.column_names if isinstance(valid, pa.Table) else list(valid.columns)
+    missing = [c for c in schemas.STORE.names if c not in present]
     if missing:
         raise ValueError(f"cannot store ratings: missing column(s) {', '.join(missing)}")
-    table = pa.Table.from_pandas(valid_df[schemas.STORE.names], preserve_index=False)
+    if isinstance(valid, pa.Table):
+        table = valid.select(schemas.STORE.names)
+    else:
+        table = pa.Table.from_pandas(valid[schemas.STORE.names], preserve_index=False)
     for name in schemas.STORE.names:
         if table[name].null_count:
             raise ValueError(f"cannot store ratings: column {name} has {table[name].null_count} null value(s)")
@@ -144,14 +148,15 @@ def _to_store_table(valid_df: pd.DataFrame) -> pa.Table:
     return table
 
 
-def write_partition(ws: Workspace, run_date: str, valid_df: pd.DataFrame) -> dict:
-    """Replace ``store/dt=<run_date>/part-0.parquet`` with ``valid_df`` (schemas.STORE columns).
+def write_partition(ws: Workspace, run_date: str, valid: pd.DataFrame | pa.Table) -> dict:
+    """Replace ``store/dt=<run_date>/part-0.parquet`` with ``valid`` (schemas.STORE columns; an Arrow
+    table as ingest makes it, or a pandas frame).
 
-    Keeps the latest event per (user_id, item_id, source); writes an empty file when ``valid_df`` is
+    Keeps the latest event per (user_id, item_id, source); writes an empty file when ``valid`` is
     empty (so a re-run that now finds nothing also clears the date). Returns ``{"path", "rows"}``.
     """
     _check_date(run_date)
-    table = _to_store_table(valid_df)
+    table = _to_store_table(valid)
     keep = latest_mask(table)
     if not keep.all():
         table = table.filter(pa.array(keep))

@@ -14,7 +14,8 @@ from .checkpoint import Checkpoint
 
 def users_per_block(n_items: int, budget_bytes: float) -> int:
     """Users scored at once by :func:`top_n`: a block of users x all items at 8 bytes a cell (the float32
-    scores plus one float32 temporary of the same shape while biases are added) within the budget.
+    scores plus room for one float32 temporary of the same shape, e.g. the transposed factors' product
+    in another :class:`~tasks.engine.model.Factoriser`) within the budget.
     Callers that split users across parallel tasks cut at multiples of this, so every block, and with it
     every float operation, is the same as in one serial call."""
     return max(1, int(budget_bytes // (8 * max(1, n_items))))
@@ -45,14 +46,16 @@ def top_n(ckpt: Checkpoint, user_idx: np.ndarray, exclude_u: np.ndarray, exclude
             # Ranked in the model's float32: float64 holds every float32 exactly, so order and ties are the
             # same, and only the kept k values per user are widened (a float64 copy of the whole block
             # was a third of the scoring time at 1M ratings).
-            raw = ckpt.model.predict_block(torch.from_numpy(u), items_all)
+            # Ranked without the per-user constant (mu + b_u): it cannot change a user's order and adding
+            # it to every cell cost a pass over the block; it is added to the kept k values only.
+            raw, user_const = ckpt.model.ranking_block(torch.from_numpy(u), items_all)
             # Mask rated items: locate each block user's excluded pairs via the sorted exclusion list.
             lo, hi = np.searchsorted(ex_u, u, "left"), np.searchsorted(ex_u, u, "right")
             rows = np.repeat(np.arange(len(u)), hi - lo)
             cols = ex_i[np.concatenate([np.arange(a, b) for a, b in zip(lo, hi)])] if len(rows) else np.empty(0, np.int64)
             raw[torch.from_numpy(rows), torch.from_numpy(cols)] = -np.inf
             vals, idx = torch.topk(raw, k, dim=1)
-            vals, idx = vals.numpy(), idx.numpy()
+            vals, idx = (vals + user_const.view(-1, 1)).numpy(), idx.numpy()
             uu = np.repeat(u, k)
             keep = np.isfinite(vals.ravel())
             ranks = np.tile(np.arange(1, k + 1, dtype=np.int32), len(u))
