@@ -126,7 +126,7 @@ def _night(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool
         clock.lap("publish")
 
         summary = report_night(cfg, ws, run_date, window, result, night, evaluation, decision, base,
-                               base_id, version_id, state)
+                               base_id, version_id, state, kind)
         clock.lap("report")
         _artifacts(run_date, version_id, state, decision, evaluation, summary)
         ledger.finish_run(ws, run_id, "done", version_id=version_id, state=state,

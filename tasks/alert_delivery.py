@@ -13,7 +13,9 @@ Receivers of an alert whose status is "new" (first night of an episode, see ``al
   ``alerts.webhook_url_env`` (never from a config file);
 - each Prefect notification block named in ``alerts.prefect_blocks`` as ``<block-type-slug>/<name>``.
 
-"ongoing" alerts (folded by the cool-down) are recorded but not sent again.
+"ongoing" alerts (folded by the cool-down) are recorded but not sent again. Alerts of backfill and
+sweep nights are recorded but not sent unless ``alerts.backfill_delivery = "send"``: replaying a
+season of history would otherwise page people with a burst of stale alerts.
 
 Secrets: the webhook URL may carry a token in its path or query, so the history and logs only ever
 show ``scheme://host``; error messages are scrubbed of the URL and its parts; httpx's own request log
@@ -45,6 +47,7 @@ FAILED = "failed"
 SKIPPED = "skipped"
 NOT_CONFIGURED = "not_configured"
 SUPPRESSED = "suppressed"
+RECORD_ONLY = "record_only"
 #: HTTP statuses worth retrying; other 4xx mean the request itself is wrong and will stay wrong.
 _RETRY_STATUSES = {408, 425, 429}
 
@@ -317,10 +320,11 @@ def _logger() -> logging.Logger | logging.LoggerAdapter:
 
 
 def deliver_alerts(ws: Workspace, alerts: Sequence[Alert], cfg: Config,
-                   env: Mapping[str, str] | None = None) -> list[dict]:
+                   env: Mapping[str, str] | None = None, send: bool = True) -> list[dict]:
     """Record and deliver folded alerts (see module docstring). Returns the final history records.
 
-    ``env``: where the webhook URL variable is looked up (default ``os.environ``). Never raises for
+    ``env``: where the webhook URL variable is looked up (default ``os.environ``). ``send=False``
+    records every alert with outcome ``record_only`` and contacts no receiver. Never raises for
     a delivery problem; only a failure to write the history file itself propagates (then there is
     nowhere to keep the alert, and the run should fail loudly).
     """
@@ -333,7 +337,11 @@ def deliver_alerts(ws: Workspace, alerts: Sequence[Alert], cfg: Config,
         rec = {**alert.to_record(), "recorded_at": _now()}
         append_history(ws, {**rec, "phase": "pending", "delivery": {}})
         delivery: dict[str, object] = {}
-        if alert.status != "new":
+        if not send:
+            note = {"outcome": RECORD_ONLY, "reason": "not sent: backfill or sweep night "
+                                                      "(alerts.backfill_delivery = \"record\")"}
+            delivery = {"event": note, "webhook": note, "blocks": {n: note for n in cfg.alerts.prefect_blocks}}
+        elif alert.status != "new":
             note = {"outcome": SUPPRESSED, "reason": f"cool-down: folded into {alert.alert_id} "
                                                      f"(night {alert.count} since {alert.first_date})"}
             delivery = {"event": note, "webhook": note, "blocks": {n: note for n in cfg.alerts.prefect_blocks}}
@@ -373,11 +381,14 @@ def _delivery_summary(delivery: Mapping) -> str:
     return "; ".join(parts)
 
 
-def raise_alerts(ws: Workspace, run_date: str, cfg: Config, env: Mapping[str, str] | None = None) -> list[dict]:
+def raise_alerts(ws: Workspace, run_date: str, cfg: Config, env: Mapping[str, str] | None = None,
+                 kind: str = "nightly") -> list[dict]:
     """Evaluate tonight's stored metrics row against the stored series, fold by cool-down, record and
-    deliver. Call after ``metrics_store.write_night_metrics``. Returns the final history records."""
+    deliver (``kind`` is the run's kind: only "nightly" runs send unless ``alerts.backfill_delivery`` says
+    "send"). Call after ``metrics_store.write_night_metrics``. Returns the final history records."""
     tonight = night_row(ws, run_date)
     series = read_metrics(ws)
     raw = evaluate_alerts(tonight, series, cfg)
     folded = fold_alerts(raw, read_history(ws), run_date, cfg.drift.cooldown_nights)
-    return deliver_alerts(ws, folded, cfg, env=env)
+    send = kind == "nightly" or cfg.alerts.backfill_delivery == "send"
+    return deliver_alerts(ws, folded, cfg, env=env, send=send)

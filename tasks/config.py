@@ -231,6 +231,9 @@ class AlertsConfig(_Section):
     retries: int = Field(3, ge=0, le=20, description="Delivery retries per receiver before recording a failure.")
     retry_delay_seconds: float = Field(1.0, ge=0.0, description="First retry delay; doubles each retry.")
     timeout_seconds: float = Field(10.0, gt=0.0, description="HTTP timeout of one delivery attempt.")
+    backfill_delivery: Literal["record", "send"] = Field(
+        "record", description="Alerts of backfill and sweep nights: 'record' keeps them in the history and "
+        "report without sending (a replay would page people with stale alerts); 'send' delivers them.")
 
 
 class Config(_Section):

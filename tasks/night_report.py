@@ -53,7 +53,7 @@ def prediction_sample(cand: Checkpoint, live: Checkpoint | None, window: pd.Data
 
 def report_night(cfg: Config, ws: Workspace, run_date: str, window: pd.DataFrame, ingested: IngestResult,
                  night, evaluation: dict, decision, base: Checkpoint | None, base_id: str | None,
-                 version_id: str, state: str) -> dict:
+                 version_id: str, state: str, kind: str = "nightly") -> dict:
     """Write tonight's metrics row, raise alerts, render the report. Returns
     ``{"markdown", "table", "alerts" (one line each), "report" (html path)}``."""
     cand = night.candidate
@@ -72,7 +72,7 @@ def report_night(cfg: Config, ws: Workspace, run_date: str, window: pd.DataFrame
                                    "state": state, "gate": decision.reason},
         **sample)
     write_night_metrics(ws, row)
-    records = raise_alerts(ws, run_date, cfg)
+    records = raise_alerts(ws, run_date, cfg, kind=kind)
     html, _ = render_report(ws, run_date, cfg)
     return {"markdown": summary_markdown(row, records), "table": summary_table(row, records),
             "alerts": [f"{r.get('severity')}: {r.get('kind')} - {r.get('explanation', '')}" for r in records],

@@ -217,6 +217,23 @@ def test_raise_alerts_end_to_end_from_stored_metrics(ws, cfg):
     assert len(night_alerts(ws, "2024-03-11")) == 1
 
 
+def test_backfill_night_alerts_are_recorded_not_sent_unless_configured(ws):
+    for day in range(1, 11):
+        write_night_metrics(ws, {"run_date": f"2024-03-{day:02d}", "skew_mean_shift": 0.30 + 0.01 * (day % 3),
+                                 "skew_w1": 0.35, "probe_coverage": 0.03, "active_users": 900})
+    write_night_metrics(ws, {"run_date": "2024-03-11", "skew_mean_shift": 0.9, "skew_w1": 0.95,
+                             "probe_coverage": 0.03, "active_users": 900})
+    with Receiver() as rx:
+        [rec] = raise_alerts(ws, "2024-03-11", _cfg(), env={ENV_NAME: rx.url}, kind="backfill")
+        assert rx.requests == []                            # the replay paged nobody
+        assert rec["status"] == "new" and rec["delivery"]["webhook"]["outcome"] == "record_only"
+        assert rec["delivery"]["event"]["outcome"] == "record_only"
+        assert night_alerts(ws, "2024-03-11")               # but the history and report have it
+        [sent] = raise_alerts(ws, "2024-03-11", _cfg(backfill_delivery="send"), env={ENV_NAME: rx.url},
+                              kind="backfill")
+        assert len(rx.requests) == 1 and sent["delivery"]["webhook"]["outcome"] == "ok"
+
+
 def test_prefect_block_by_name_and_event_inside_a_flow(ws, prefect_harness):
     from prefect import flow
     from prefect.blocks.notifications import CustomWebhookNotificationBlock
