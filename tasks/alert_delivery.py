@@ -13,7 +13,10 @@ Receivers of an alert whose status is "new" (first night of an episode, see ``al
   ``alerts.webhook_url_env`` (never from a config file);
 - each Prefect notification block named in ``alerts.prefect_blocks`` as ``<block-type-slug>/<name>``.
 
-"ongoing" alerts (folded by the cool-down) are recorded but not sent again. Alerts of backfill and
+"ongoing" alerts (folded by the cool-down) are recorded but not sent again. When a re-run of a night
+(e.g. on corrected logs) no longer raises an alert that night had raised, a ``withdrawn`` record is
+appended: reports, ``tarewise status`` and the episode logic stop counting it (receivers that were
+already notified get no retraction). Alerts of backfill and
 sweep nights are recorded but not sent unless ``alerts.backfill_delivery = "send"``: replaying a
 season of history would otherwise page people with a burst of stale alerts.
 
@@ -35,7 +38,7 @@ from urllib.parse import urlsplit
 
 import httpx
 
-from tasks.alert_rules import Alert, evaluate_alerts, fold_alerts
+from tasks.alert_rules import WITHDRAWN, Alert, evaluate_alerts, fold_alerts
 from tasks.config import Config
 from tasks.metrics_store import night_row, read_metrics
 from tasks.workspace import Workspace
@@ -80,13 +83,30 @@ def read_history(ws: Workspace) -> list[dict]:
 
 
 def night_alerts(ws: Workspace, run_date: str, history: Sequence[Mapping] | None = None) -> list[dict]:
-    """The latest record of each alert raised on ``run_date`` (in first-recorded order)."""
+    """The latest record of each alert raised on ``run_date`` (in first-recorded order), leaving out
+    alerts that a later re-run of the night withdrew."""
     records = read_history(ws) if history is None else history
     latest: dict[str, dict] = {}
     for rec in records:
         if rec.get("run_date") == run_date and rec.get("alert_id"):
             latest[str(rec["alert_id"])] = dict(rec)
-    return list(latest.values())
+    return [rec for rec in latest.values() if rec.get("phase") != WITHDRAWN]
+
+
+def withdraw_stale(ws: Workspace, run_date: str, raised: Sequence[Alert]) -> list[dict]:
+    """A re-run of ``run_date`` (e.g. on corrected logs) that no longer raises an alert the night had
+    raised before: append a ``withdrawn`` record for it, so the report, ``status`` and the episode logic
+    stop counting it. Receivers already notified are not sent a retraction. Returns the new records."""
+    keep = {a.alert_id for a in raised}
+    out = []
+    for rec in night_alerts(ws, run_date):
+        if str(rec["alert_id"]) not in keep:
+            gone = {**rec, "phase": WITHDRAWN, "recorded_at": _now(),
+                    "reason": "a re-run of this night no longer raises it"}
+            append_history(ws, gone)
+            out.append(gone)
+            _logger().info("alert %s of %s withdrawn: a re-run no longer raises it", rec["alert_id"], run_date)
+    return out
 
 
 def append_history(ws: Workspace, record: Mapping) -> None:
@@ -390,5 +410,6 @@ def raise_alerts(ws: Workspace, run_date: str, cfg: Config, env: Mapping[str, st
     series = read_metrics(ws)
     raw = evaluate_alerts(tonight, series, cfg)
     folded = fold_alerts(raw, read_history(ws), run_date, cfg.drift.cooldown_nights)
+    withdraw_stale(ws, run_date, folded)
     send = kind == "nightly" or cfg.alerts.backfill_delivery == "send"
     return deliver_alerts(ws, folded, cfg, env=env, send=send)

@@ -289,13 +289,25 @@ def evaluate_alerts(tonight: Mapping, history: pd.DataFrame, cfg: Config) -> lis
     return skew_alerts(tonight, history, cfg) + guard_alerts(tonight, cfg)
 
 
+#: History phase of an alert that a re-run of its night no longer raises (see ``alert_delivery``).
+WITHDRAWN = "withdrawn"
+
+
 def latest_states(records: Iterable[Mapping]) -> dict[str, dict]:
-    """Latest history record per alert id (history is append-only; the last record wins)."""
+    """Latest history record per alert id (history is append-only; the last record wins). A withdrawn
+    night ends an episode that consisted of that night alone and is otherwise ignored here."""
     state: dict[str, dict] = {}
     for rec in records:
         aid = rec.get("alert_id")
-        if aid:
-            state[str(aid)] = dict(rec)
+        if not aid:
+            continue
+        aid = str(aid)
+        if rec.get("phase") == WITHDRAWN:
+            cur = state.get(aid)
+            if cur and cur.get("first_date") == cur.get("last_date") == rec.get("run_date"):
+                del state[aid]
+            continue
+        state[aid] = dict(rec)
     return state
 
 

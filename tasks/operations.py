@@ -11,6 +11,7 @@ import pandas as pd
 
 from . import ledger, versions
 from .alert_delivery import read_history
+from .alert_rules import WITHDRAWN
 from .lock import is_stale, read_lock, workspace_lock
 from .retention import default_as_of
 from .workspace import Workspace
@@ -74,7 +75,7 @@ def recent_alerts(ws: Workspace, as_of: str, days: int) -> list[dict]:
         rd = str(rec.get("run_date", ""))
         if rec.get("alert_id") and first < rd <= as_of:
             latest[(rec["alert_id"], rd)] = rec
-    return sorted(latest.values(), key=lambda r: (str(r.get("run_date")), str(r.get("recorded_at", ""))))
+    return sorted((r for r in latest.values() if r.get("phase") != WITHDRAWN), key=lambda r: (str(r.get("run_date")), str(r.get("recorded_at", ""))))
 
 
 def status(ws: Workspace, timezone: str, stale_seconds: float, runs: int = 10, days: int = 7) -> dict:

@@ -26,7 +26,7 @@ import pandas as pd
 from matplotlib.figure import Figure
 
 from tasks.alert_delivery import night_alerts, read_history
-from tasks.alert_rules import SKEW_METRICS, metric_band
+from tasks.alert_rules import SKEW_METRICS, WITHDRAWN, metric_band
 from tasks.config import Config
 from tasks.metrics_store import night_row, read_metrics
 from tasks.skew_metrics import jsonable
@@ -291,7 +291,9 @@ def build_report(ws: Workspace, run_date: str, cfg: Config) -> dict:
     series = read_metrics(ws, until=run_date)
     history = read_history(ws)
     alerts = night_alerts(ws, run_date, history)
-    skew_dates = {str(r.get("run_date")) for r in history if r.get("kind") == "skew_shift"}
+    withdrawn = {(r.get("alert_id"), r.get("run_date")) for r in history if r.get("phase") == WITHDRAWN}
+    skew_dates = {str(r.get("run_date")) for r in history if r.get("kind") == "skew_shift"
+                  and (r.get("alert_id"), r.get("run_date")) not in withdrawn}
     detail = _detail(row)
     trend = _trend_frame(series, run_date, cfg, skew_dates)
     clean_row = {k: v for k, v in jsonable(row).items() if k != "detail_json"}

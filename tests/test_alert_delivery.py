@@ -217,6 +217,27 @@ def test_raise_alerts_end_to_end_from_stored_metrics(ws, cfg):
     assert len(night_alerts(ws, "2024-03-11")) == 1
 
 
+def test_rerun_that_no_longer_alerts_withdraws_the_earlier_alert(ws, cfg):
+    for day in range(1, 11):
+        write_night_metrics(ws, {"run_date": f"2024-03-{day:02d}", "skew_mean_shift": 0.30 + 0.01 * (day % 3),
+                                 "skew_w1": 0.35, "probe_coverage": 0.03, "active_users": 900})
+    write_night_metrics(ws, {"run_date": "2024-03-11", "skew_mean_shift": 0.9, "skew_w1": 0.95,
+                             "probe_coverage": 0.03, "active_users": 900})
+    [rec] = raise_alerts(ws, "2024-03-11", cfg, env={})
+    assert [a["alert_id"] for a in night_alerts(ws, "2024-03-11")] == [rec["alert_id"]]
+    # corrected logs: the same night re-run is ordinary now
+    write_night_metrics(ws, {"run_date": "2024-03-11", "skew_mean_shift": 0.31, "skew_w1": 0.35,
+                             "probe_coverage": 0.03, "active_users": 900})
+    assert raise_alerts(ws, "2024-03-11", cfg, env={}) == []
+    assert night_alerts(ws, "2024-03-11") == []
+    assert read_history(ws)[-1]["phase"] == "withdrawn"
+    # and the withdrawn night does not make the next night's alert an "ongoing" one
+    write_night_metrics(ws, {"run_date": "2024-03-12", "skew_mean_shift": 0.9, "skew_w1": 0.95,
+                             "probe_coverage": 0.03, "active_users": 900})
+    [nxt] = raise_alerts(ws, "2024-03-12", cfg, env={})
+    assert (nxt["status"], nxt["alert_id"], nxt["count"]) == ("new", "skew_shift-2024-03-12", 1)
+
+
 def test_backfill_night_alerts_are_recorded_not_sent_unless_configured(ws):
     for day in range(1, 11):
         write_night_metrics(ws, {"run_date": f"2024-03-{day:02d}", "skew_mean_shift": 0.30 + 0.01 * (day % 3),
