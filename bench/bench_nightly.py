@@ -135,7 +135,6 @@ def run_case(size: str, logs: Path, work: Path, method: str, seed_epochs: int, r
     os.environ.setdefault("PREFECT_SERVER_ANALYTICS_ENABLED", "false")
     os.environ.setdefault("DO_NOT_TRACK", "1")
     Path(os.environ["PREFECT_HOME"]).mkdir(parents=True, exist_ok=True)
-    import pandas as pd
     import torch
 
     from flows.nightly import nightly_for

@@ -32,7 +32,6 @@ OUT = ROOT / "bench" / "out"
 
 def window_parquet(logs: Path, dest: Path) -> int:
     import pyarrow as pa
-    import pyarrow.compute as pc
     import pyarrow.parquet as pq
     parts = sorted(logs.glob("dt=*/*.parquet"))
     t = pa.concat_tables([pq.read_table(p, columns=["user_id", "item_id", "rating", "event_time", "source"])

@@ -55,3 +55,19 @@ def mnar_logs(n_users: int = 150, n_items: int = 60, per_user: int = 12, probe_u
                         + [np.empty(0, dtype=np.int64)])
     probe = pd.DataFrame({"user_id": uid[pu], "item_id": iid[pi], "rating": truth[pu, pi]})
     return SyntheticLogs(organic=organic, probe=probe, truth=truth, user_ids=uid, item_ids=iid)
+
+
+def random_biased_mf(n_users: int, n_items: int, dim: int, global_mean: float, init_scale: float,
+                     seed: int):
+    """A ``BiasedMF`` with random factors and N(0, 1) user and item biases (fresh models have zero
+    biases, which would hide bias-handling mistakes). Returns ``(model, generator)``."""
+    import torch
+
+    from tasks.engine.model import BiasedMF
+
+    g = torch.Generator().manual_seed(seed)
+    m = BiasedMF(n_users, n_items, dim, global_mean, init_scale, g)
+    with torch.no_grad():
+        m.user_bias.weight.normal_(0, 1, generator=g)
+        m.item_bias.weight.normal_(0, 1, generator=g)
+    return m, g

@@ -8,12 +8,11 @@ import numpy as np
 import pandas as pd
 import pytest
 import torch
-from synthetic import mnar_logs
+from synthetic import mnar_logs, random_biased_mf
 
 from tasks.config import Config
 from tasks.engine.checkpoint import Checkpoint
 from tasks.engine.idmap import IdMap
-from tasks.engine.model import BiasedMF
 from tasks.engine.trainer import fit
 
 torch.set_num_threads(1)
@@ -47,11 +46,7 @@ def test_duplicate_ids_are_refused() -> None:
 
 
 def test_grow_keeps_old_rows_and_initialises_new_ones() -> None:
-    g = torch.Generator().manual_seed(0)
-    m = BiasedMF(6, 5, 4, 3.0, 0.3, g)
-    with torch.no_grad():
-        m.user_bias.weight.normal_(0, 1, generator=g)
-        m.item_bias.weight.normal_(0, 1, generator=g)
+    m, g = random_biased_mf(6, 5, 4, 3.0, 0.3, seed=0)
     uu, ii = torch.meshgrid(torch.arange(6), torch.arange(5), indexing="ij")
     with torch.no_grad():
         before = m(uu.reshape(-1), ii.reshape(-1)).clone()

@@ -6,6 +6,7 @@ import numpy as np
 import pandas as pd
 import torch
 from scipy.optimize import check_grad, minimize
+from synthetic import mnar_logs, random_biased_mf
 
 from tasks.config import Config
 from tasks.engine.model import BiasedMF, build_model
@@ -15,11 +16,8 @@ torch.set_num_threads(1)
 
 
 def test_block_and_sampled_predictions_agree_with_pairwise_forward() -> None:
-    g = torch.Generator().manual_seed(0)
-    m = BiasedMF(7, 9, 3, 3.2, 0.5, g)
+    m, g = random_biased_mf(7, 9, 3, 3.2, 0.5, seed=0)
     with torch.no_grad():
-        m.user_bias.weight.normal_(0, 1, generator=g)
-        m.item_bias.weight.normal_(0, 1, generator=g)
         users, items = torch.tensor([0, 4, 6]), torch.tensor([1, 2, 8, 5])
         block = m.predict_block(users, items)
         uu, ii = torch.meshgrid(users, items, indexing="ij")
@@ -30,11 +28,7 @@ def test_block_and_sampled_predictions_agree_with_pairwise_forward() -> None:
 
 
 def test_fused_step_outputs_equal_separate_calls_and_their_gradients() -> None:
-    g = torch.Generator().manual_seed(2)
-    m = BiasedMF(8, 11, 3, 3.0, 0.5, g)
-    with torch.no_grad():
-        m.user_bias.weight.normal_(0, 1, generator=g)
-        m.item_bias.weight.normal_(0, 1, generator=g)
+    m, g = random_biased_mf(8, 11, 3, 3.0, 0.5, seed=2)
     u, i = torch.tensor([0, 3, 3, 7]), torch.tensor([1, 10, 2, 1])
     bu, bi = torch.tensor([3, 5]), torch.tensor([2, 2, 9])
 
@@ -133,11 +127,8 @@ def test_trained_mf_reaches_the_lbfgs_objective() -> None:
 
 
 def test_ranking_block_plus_user_constant_is_the_block() -> None:
-    g = torch.Generator().manual_seed(5)
-    m = BiasedMF(6, 11, 4, 3.1, 0.5, g)
+    m, g = random_biased_mf(6, 11, 4, 3.1, 0.5, seed=5)
     with torch.no_grad():
-        m.user_bias.weight.normal_(0, 1, generator=g)
-        m.item_bias.weight.normal_(0, 1, generator=g)
         users, items = torch.tensor([5, 0, 3]), torch.arange(11)
         part, const = m.ranking_block(users, items)
         assert const.shape == (3,)
@@ -145,7 +136,6 @@ def test_ranking_block_plus_user_constant_is_the_block() -> None:
 
 
 def test_top_n_matches_brute_force_over_every_unrated_item() -> None:
-    from synthetic import mnar_logs
     from tasks.engine.scoring import top_n
     logs = mnar_logs(n_users=40, n_items=30, per_user=6, probe_users=20, probes_per_user=3, seed=6)
     cfg = Config().updated({"debias.method": "per_user", "model.max_epochs": 3})

@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import hashlib
 import json
-from pathlib import Path
 
 import pyarrow.fs as pafs
 import pyarrow.parquet as pq
