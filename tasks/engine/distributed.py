@@ -28,7 +28,6 @@ window). Imports no Prefect.
 from __future__ import annotations
 
 import argparse
-import copy
 import hashlib
 import json
 import os
@@ -44,17 +43,13 @@ import torch
 import torch.distributed as dist
 
 from ..config import DebiasConfig, ModelConfig, ScaleConfig
-from . import per_user
 from .checkpoint import Checkpoint
-from .idmap import IdMap
-from .model import BiasedMF
 from .profiles import ProfileSampler, empirical_cdf
-from .propensity import naive_bayes_propensity, rating_weights
-from .recalibration import MonotoneMap
 from .reference import cap_reference_users, draw_reference_users, probe_errors, reference_probabilities
 from .row_adam import RowAdam
 from .splits import heldout_mask
-from .trainer import REQUIRED, EngineInputError, FitResult, StepCalibration, _check_frame, _levels, step_loss
+from .trainer import (REQUIRED, EarlyStopping, EngineInputError, FitResult, StepCalibration, _check_frame,
+                      combined_with, finish_checkpoint, prepare_model, step_loss, training_examples)
 
 #: Methods whose training this module runs. ``snips`` needs the global weight sum of every step (one more
 #: collective per step) and is not done yet.
@@ -174,7 +169,7 @@ def fit_distributed(organic: pd.DataFrame, probe: pd.DataFrame, scale: ScaleConf
     if method not in SUPPORTED:
         raise EngineInputError(f"debias.method = {method!r} is not supported by data-parallel training "
                                f"(supported: {', '.join(SUPPORTED)})")
-    combine = debias.combine_with if method in ("calibrated", "per_user") else "none"
+    combine = combined_with(debias)
     if combine == "snips":
         raise EngineInputError("debias.combine_with = 'snips' is not supported by data-parallel training")
     organic = _check_frame(organic, "organic", scale)
@@ -188,18 +183,8 @@ def fit_distributed(organic: pd.DataFrame, probe: pd.DataFrame, scale: ScaleConf
     gen = torch.Generator().manual_seed(model_cfg.seed)
     notes: list[str] = []
 
-    users = IdMap(previous.users.ids) if previous else IdMap()
-    items = IdMap(previous.items.ids) if previous else IdMap()
-    new_users = users.extend(pd.concat([organic["user_id"], probe["user_id"]]))
-    new_items = items.extend(pd.concat([organic["item_id"], probe["item_id"]]))
-    if previous is not None:
-        model = copy.deepcopy(previous.model)
-        model.grow(len(users), len(items), model_cfg.init_scale, gen)
-        epochs = model_cfg.finetune_epochs
-    else:
-        model = BiasedMF(len(users), len(items), model_cfg.dim, float(organic["rating"].mean()),
-                         model_cfg.init_scale, gen)
-        epochs = model_cfg.max_epochs
+    users, items, new_users, new_items, model, epochs = prepare_model(organic, probe, model_cfg, previous, gen,
+                                                                      notes)
     if rank > 0:
         # Rank 0 keeps the single-process streams, so one worker reproduces fit() exactly (tested).
         gen = torch.Generator().manual_seed(model_cfg.seed * 1_000_003 + 7919 * rank)
@@ -212,21 +197,8 @@ def fit_distributed(organic: pd.DataFrame, probe: pd.DataFrame, scale: ScaleConf
     mine_pf = owner(all_pf_u, world) == rank
     pf_u, pf_i, pf_r = torch.from_numpy(all_pf_u[mine_pf]), torch.from_numpy(all_pf_i[mine_pf]), all_pf_r[mine_pf]
 
-    tr_u, tr_i = users.lookup(organic["user_id"]), items.lookup(organic["item_id"])
-    tr_r = organic["rating"].to_numpy(dtype=float, copy=True)
-    tr_w = np.ones(len(organic))
-    weighting = method if method == "ips" else combine if combine == "ips" else None
-    if weighting:
-        if probe_fit.empty:
-            notes.append(f"{weighting}: no probe ratings to estimate P(r); trained unweighted this time")
-        else:
-            share = len(organic) / (len(users) * len(items))
-            prop = naive_bayes_propensity(tr_r, all_pf_r, _levels(scale), share)
-            tr_w = rating_weights(tr_r, _levels(scale), prop, debias.propensity_clip)
-    if method == "probe_upweight" or combine == "probe_upweight":
-        tr_u, tr_i = np.concatenate([tr_u, all_pf_u]), np.concatenate([tr_i, all_pf_i])
-        tr_r = np.concatenate([tr_r, all_pf_r])
-        tr_w = np.concatenate([tr_w, np.full(len(all_pf_r), debias.probe_weight)])
+    tr_u, tr_i, tr_r, tr_w, _ = training_examples(organic, users, items, all_pf_u, all_pf_i, all_pf_r, scale, debias,
+                                                  notes, weightings=("ips",))
     n_total = len(tr_r)
     mine = owner(tr_u, world) == rank
     T_u, T_i = torch.from_numpy(tr_u[mine]), torch.from_numpy(tr_i[mine])
@@ -264,8 +236,7 @@ def fit_distributed(organic: pd.DataFrame, probe: pd.DataFrame, scale: ScaleConf
     optimiser = RowAdam(list(model.parameters()), lr=model_cfg.learning_rate)
     rounds: list[dict] = []
     draws: list[int] = []
-    best_val, best_state, best_epoch, stale = float("inf"), copy.deepcopy(model.state_dict()), 0, 0
-    total_pf = int(all_sum(float(len(pf_r)))[0])
+    stopping = EarlyStopping(model, model_cfg.patience)
 
     for epoch in range(1, epochs + 1):
         t0 = time.perf_counter()
@@ -330,34 +301,13 @@ def fit_distributed(organic: pd.DataFrame, probe: pd.DataFrame, scale: ScaleConf
                        "calibration_term": term_sum / global_visits if status == "on" else float("nan"),
                        "val_mae": val, "seconds": time.perf_counter() - t0})
         say(f"round {epoch}: loss={se_sum / n_steps:.4f} val_mae={val:.4f} calibration={status} references={n_refs}")
-        if total_pf == 0:
-            best_state, best_epoch = copy.deepcopy(model.state_dict()), epoch
-            continue
-        if val < best_val - 1e-6:
-            best_val, best_state, best_epoch, stale = val, copy.deepcopy(model.state_dict()), epoch, 0
-        else:
-            stale += 1
-            if stale >= model_cfg.patience:
-                break
-    model.load_state_dict(best_state)
+        if stopping.update(epoch, val):
+            break
+    best_epoch = stopping.restore()
 
-    ckpt = Checkpoint(model=model, users=users, items=items, scale_min=scale.min, scale_max=scale.max,
-                      method=method if combine == "none" else f"{method}+{combine}",
-                      info={"seed": model_cfg.seed, "threads": model_cfg.threads, "best_epoch": best_epoch,
-                            "epochs_run": len(rounds), "warm_start": previous is not None, "world_size": world})
     # Post-hoc maps from the whole fitting split, which every rank holds: identical on every rank.
-    if (method == "recalibrate" or combine == "recalibrate") and len(all_pf_r) >= 2:
-        ckpt.score_map = MonotoneMap.fit(ckpt.raw_scores(all_pf_u, all_pf_i), all_pf_r)
-    if method == "per_user":
-        correction = per_user.fit_correction(ckpt, organic, probe_fit, debias, scale)
-        ckpt.score_map, ckpt.user_offset, ckpt.user_scale = (correction.score_map, correction.user_offset,
-                                                             correction.user_scale)
-        ckpt.info["per_user"] = correction.info
-        notes.extend(correction.notes)
-    final = ckpt.score_idx(all_pf_u, all_pf_i)
-    errs = probe_errors(all_pf_u, final, all_pf_r, debias.shrinkage)
-    errs.index = users.ids[errs.index.to_numpy()]
-    errs.index.name = "user_id"
+    ckpt, errs = finish_checkpoint(model, users, items, scale, model_cfg, debias, previous, best_epoch, len(rounds),
+                                   organic, probe_fit, all_pf_u, all_pf_i, all_pf_r, notes, info={"world_size": world})
     result = FitResult(checkpoint=ckpt, rounds=rounds, probe_errors=errs, probe_fit=probe_fit,
                        probe_heldout=probe_heldout, best_epoch=best_epoch, new_users=new_users,
                        new_items=new_items, notes=notes)

@@ -135,6 +135,119 @@ def _levels(scale: ScaleConfig) -> np.ndarray:
     return np.asarray(scale.levels if scale.step > 0 else np.linspace(scale.min, scale.max, 9), float)
 
 
+def prepare_model(organic: pd.DataFrame, probe: pd.DataFrame, model_cfg: ModelConfig,
+                  previous: Checkpoint | None, gen: torch.Generator, notes: list[str]
+                  ) -> tuple[IdMap, IdMap, int, int, BiasedMF, int]:
+    """Id maps (the previous checkpoint's, extended by tonight's ids) and the model to train: a grown copy
+    of ``previous`` (fine-tune for ``model.finetune_epochs``) or a fresh one (``model.max_epochs``).
+    Returns ``(users, items, new_users, new_items, model, epochs)``; draws from ``gen`` in a fixed order,
+    so the data-parallel trainer gets the same initial state (tasks/engine/distributed.py)."""
+    users = IdMap(previous.users.ids) if previous else IdMap()
+    items = IdMap(previous.items.ids) if previous else IdMap()
+    new_users = users.extend(pd.concat([organic["user_id"], probe["user_id"]]))
+    new_items = items.extend(pd.concat([organic["item_id"], probe["item_id"]]))
+    if previous is not None:
+        model = copy.deepcopy(previous.model)
+        model.grow(len(users), len(items), model_cfg.init_scale, gen)
+        if getattr(model, "dim", model_cfg.dim) != model_cfg.dim:
+            notes.append(f"warm start keeps the checkpoint's dim={model.dim} (config says {model_cfg.dim})")
+        return users, items, new_users, new_items, model, model_cfg.finetune_epochs
+    model = BiasedMF(len(users), len(items), model_cfg.dim, float(organic["rating"].mean()),
+                     model_cfg.init_scale, gen)
+    return users, items, new_users, new_items, model, model_cfg.max_epochs
+
+
+class EarlyStopping:
+    """Keeps the weights of the round with the lowest probe-fit MAE; says stop after ``patience`` rounds
+    without an improvement of more than 1e-6. Without probe ratings (``val`` NaN) every round counts as
+    best, so the last round's weights are kept and training runs every epoch."""
+
+    def __init__(self, model: torch.nn.Module, patience: int) -> None:
+        self.model, self.patience = model, patience
+        self.best_val, self.best_epoch, self.stale = float("inf"), 0, 0
+        self.best_state = copy.deepcopy(model.state_dict())
+
+    def update(self, epoch: int, val: float) -> bool:
+        """Record round ``epoch``'s probe-fit MAE; True when training should stop."""
+        if np.isnan(val):
+            self.best_state, self.best_epoch = copy.deepcopy(self.model.state_dict()), epoch
+            return False
+        if val < self.best_val - 1e-6:
+            self.best_val, self.best_epoch, self.stale = val, epoch, 0
+            self.best_state = copy.deepcopy(self.model.state_dict())
+            return False
+        self.stale += 1
+        return self.stale >= self.patience
+
+    def restore(self) -> int:
+        """Load the best weights into the model; returns their epoch."""
+        self.model.load_state_dict(self.best_state)
+        return self.best_epoch
+
+
+def combined_with(debias: DebiasConfig) -> str:
+    """The probe option trained alongside the method: ``debias.combine_with`` for the two methods that take
+    one (calibrated, per_user), else "none"."""
+    return debias.combine_with if debias.method in ("calibrated", "per_user") else "none"
+
+
+def training_examples(organic: pd.DataFrame, users: IdMap, items: IdMap, pf_u: np.ndarray, pf_i: np.ndarray,
+                      pf_r: np.ndarray, scale: ScaleConfig, debias: DebiasConfig, notes: list[str],
+                      weightings: tuple[str, ...] = ("ips", "snips")
+                      ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, str | None]:
+    """The squared-error examples of a run: organic ratings as indices, each with its weight (IPS/SNIPS
+    propensity weights from the fitting probe ``pf_*`` when the method or ``combine_with`` asks for one of
+    ``weightings``), plus the fitting probe ratings at ``debias.probe_weight`` for probe up-weighting.
+    Returns ``(users [N], items [N], ratings [N], weights [N], weighting or None)``."""
+    method = debias.method
+    combine = combined_with(debias)
+    tr_u, tr_i = users.lookup(organic["user_id"]), items.lookup(organic["item_id"])
+    tr_r = organic["rating"].to_numpy(dtype=float, copy=True)
+    tr_w = np.ones(len(organic))
+    weighting = method if method in weightings else combine if combine in weightings else None
+    if weighting:
+        if len(pf_r) == 0:
+            notes.append(f"{weighting}: no probe ratings to estimate P(r); trained unweighted this time")
+        else:
+            share = len(organic) / (len(users) * len(items))
+            prop = naive_bayes_propensity(tr_r, pf_r, _levels(scale), share)
+            tr_w = rating_weights(tr_r, _levels(scale), prop, debias.propensity_clip)
+    if method == "probe_upweight" or combine == "probe_upweight":
+        tr_u, tr_i = np.concatenate([tr_u, pf_u]), np.concatenate([tr_i, pf_i])
+        tr_r = np.concatenate([tr_r, pf_r])
+        tr_w = np.concatenate([tr_w, np.full(len(pf_r), debias.probe_weight)])
+    return tr_u, tr_i, tr_r, tr_w, weighting
+
+
+def finish_checkpoint(model: BiasedMF, users: IdMap, items: IdMap, scale: ScaleConfig, model_cfg: ModelConfig,
+                      debias: DebiasConfig, previous: Checkpoint | None, best_epoch: int, epochs_run: int,
+                      organic: pd.DataFrame, probe_fit: pd.DataFrame, pf_u: np.ndarray, pf_i: np.ndarray,
+                      pf_r: np.ndarray, notes: list[str], info: dict | None = None) -> tuple[Checkpoint, pd.Series]:
+    """The trained model as a checkpoint with its post-hoc correction (recalibration map or per-user
+    correction, fitted on the fitting probe ``pf_*``), and every probe user's shrunk probe error under
+    it (a Series indexed by user id). ``info`` adds to the checkpoint's info."""
+    method = debias.method
+    combine = combined_with(debias)
+    ckpt = Checkpoint(model=model, users=users, items=items, scale_min=scale.min, scale_max=scale.max,
+                      method=method if combine == "none" else f"{method}+{combine}",
+                      info={"seed": model_cfg.seed, "threads": model_cfg.threads, "best_epoch": best_epoch,
+                            "epochs_run": epochs_run, "warm_start": previous is not None, **(info or {})})
+    # Post-hoc corrections are refitted from scratch every night on the current model (never carried
+    # over from ``previous``): they describe this model's errors, not the last one's.
+    if (method == "recalibrate" or combine == "recalibrate") and len(pf_r) >= 2:
+        ckpt.score_map = MonotoneMap.fit(ckpt.raw_scores(pf_u, pf_i), pf_r)
+    if method == "per_user":
+        correction = per_user.fit_correction(ckpt, organic, probe_fit, debias, scale)
+        ckpt.score_map, ckpt.user_offset, ckpt.user_scale = (correction.score_map, correction.user_offset,
+                                                             correction.user_scale)
+        ckpt.info["per_user"] = correction.info
+        notes.extend(correction.notes)
+    errs = probe_errors(pf_u, ckpt.score_idx(pf_u, pf_i), pf_r, debias.shrinkage)
+    errs.index = users.ids[errs.index.to_numpy()]
+    errs.index.name = "user_id"
+    return ckpt, errs
+
+
 def fit(organic: pd.DataFrame, probe: pd.DataFrame, scale: ScaleConfig, model_cfg: ModelConfig,
         debias: DebiasConfig, previous: Checkpoint | None = None,
         log: Callable[[str], None] | None = None) -> FitResult:
@@ -153,24 +266,11 @@ def fit(organic: pd.DataFrame, probe: pd.DataFrame, scale: ScaleConfig, model_cf
     gen = torch.Generator().manual_seed(model_cfg.seed)
     rng = np.random.default_rng(model_cfg.seed)
     method = debias.method
-    combine = debias.combine_with if method in ("calibrated", "per_user") else "none"
     notes: list[str] = []
 
     # ---- id maps and model ------------------------------------------------------------------
-    users = IdMap(previous.users.ids) if previous else IdMap()
-    items = IdMap(previous.items.ids) if previous else IdMap()
-    new_users = users.extend(pd.concat([organic["user_id"], probe["user_id"]]))
-    new_items = items.extend(pd.concat([organic["item_id"], probe["item_id"]]))
-    if previous is not None:
-        model = copy.deepcopy(previous.model)
-        model.grow(len(users), len(items), model_cfg.init_scale, gen)
-        if getattr(model, "dim", model_cfg.dim) != model_cfg.dim:
-            notes.append(f"warm start keeps the checkpoint's dim={model.dim} (config says {model_cfg.dim})")
-        epochs = model_cfg.finetune_epochs
-    else:
-        model = BiasedMF(len(users), len(items), model_cfg.dim, float(organic["rating"].mean()),
-                         model_cfg.init_scale, gen)
-        epochs = model_cfg.max_epochs
+    users, items, new_users, new_items, model, epochs = prepare_model(organic, probe, model_cfg, previous, gen,
+                                                                      notes)
 
     # ---- probe split ------------------------------------------------------------------------
     held = heldout_mask(probe["user_id"].to_numpy(), probe["item_id"].to_numpy(), debias.heldout_share)
@@ -180,23 +280,8 @@ def fit(organic: pd.DataFrame, probe: pd.DataFrame, scale: ScaleConfig, model_cf
     pf_r = probe_fit["rating"].to_numpy(dtype=float, copy=True)
 
     # ---- training examples and weights ------------------------------------------------------
-    tr_u = users.lookup(organic["user_id"])
-    tr_i = items.lookup(organic["item_id"])
-    tr_r = organic["rating"].to_numpy(dtype=float, copy=True)
-    tr_w = np.ones(len(organic))
-    weighting = method if method in ("ips", "snips") else combine if combine in ("ips", "snips") else None
-    if weighting:
-        if probe_fit.empty:
-            notes.append(f"{weighting}: no probe ratings to estimate P(r); trained unweighted this time")
-        else:
-            share = len(organic) / (len(users) * len(items))
-            prop = naive_bayes_propensity(tr_r, pf_r, _levels(scale), share)
-            tr_w = rating_weights(tr_r, _levels(scale), prop, debias.propensity_clip)
-    if method == "probe_upweight" or combine == "probe_upweight":
-        tr_u = np.concatenate([tr_u, pf_u.numpy()])
-        tr_i = np.concatenate([tr_i, pf_i.numpy()])
-        tr_r = np.concatenate([tr_r, pf_r])
-        tr_w = np.concatenate([tr_w, np.full(len(pf_r), debias.probe_weight)])
+    tr_u, tr_i, tr_r, tr_w, weighting = training_examples(organic, users, items, pf_u.numpy(), pf_i.numpy(), pf_r,
+                                                          scale, debias, notes)
     T_u, T_i = torch.from_numpy(tr_u), torch.from_numpy(tr_i)
     T_r, T_w = torch.from_numpy(tr_r).float(), torch.from_numpy(tr_w).float()
     self_normalise = weighting == "snips"
@@ -221,7 +306,7 @@ def fit(organic: pd.DataFrame, probe: pd.DataFrame, scale: ScaleConfig, model_cf
     bs = min(model_cfg.batch_size, n)
     n_steps = -(-n // bs)
     rounds: list[dict] = []
-    best_val, best_state, best_epoch, stale = float("inf"), copy.deepcopy(model.state_dict()), 0, 0
+    stopping = EarlyStopping(model, model_cfg.patience)
 
     for epoch in range(1, epochs + 1):
         t0 = time.perf_counter()
@@ -298,37 +383,14 @@ def fit(organic: pd.DataFrame, probe: pd.DataFrame, scale: ScaleConfig, model_cf
             f"references={len(ref_idx)}")
         if not np.isfinite(se_sum):
             raise FloatingPointError(f"training diverged at round {epoch} (loss {se_sum}); lower model.learning_rate")
-        if len(pf_r) == 0:
-            best_state, best_epoch = copy.deepcopy(model.state_dict()), epoch
-            continue
-        if val < best_val - 1e-6:
-            best_val, best_state, best_epoch, stale = val, copy.deepcopy(model.state_dict()), epoch, 0
-        else:
-            stale += 1
-            if stale >= model_cfg.patience:
-                break
+        if stopping.update(epoch, val):
+            break
     if len(pf_r) == 0:
         notes.append("no probe ratings in the fitting split: no early stopping, ran every epoch")
-    model.load_state_dict(best_state)
+    best_epoch = stopping.restore()
 
-    ckpt = Checkpoint(model=model, users=users, items=items, scale_min=scale.min, scale_max=scale.max,
-                      method=method if combine == "none" else f"{method}+{combine}",
-                      info={"seed": model_cfg.seed, "threads": model_cfg.threads, "best_epoch": best_epoch,
-                            "epochs_run": len(rounds), "warm_start": previous is not None})
-    # Post-hoc corrections are refitted from scratch every night on the current model (never carried
-    # over from ``previous``): they describe this model's errors, not the last one's.
-    if (method == "recalibrate" or combine == "recalibrate") and len(pf_r) >= 2:
-        ckpt.score_map = MonotoneMap.fit(ckpt.raw_scores(pf_u.numpy(), pf_i.numpy()), pf_r)
-    if method == "per_user":
-        correction = per_user.fit_correction(ckpt, organic, probe_fit, debias, scale)
-        ckpt.score_map, ckpt.user_offset, ckpt.user_scale = (correction.score_map, correction.user_offset,
-                                                             correction.user_scale)
-        ckpt.info["per_user"] = correction.info
-        notes.extend(correction.notes)
-    final = ckpt.score_idx(pf_u.numpy(), pf_i.numpy())
-    errs = probe_errors(pf_u.numpy(), final, pf_r, debias.shrinkage)
-    errs.index = users.ids[errs.index.to_numpy()]
-    errs.index.name = "user_id"
+    ckpt, errs = finish_checkpoint(model, users, items, scale, model_cfg, debias, previous, best_epoch, len(rounds),
+                                   organic, probe_fit, pf_u.numpy(), pf_i.numpy(), pf_r, notes)
     return FitResult(checkpoint=ckpt, rounds=rounds, probe_errors=errs, probe_fit=probe_fit,
                      probe_heldout=probe_heldout, best_epoch=best_epoch, new_users=new_users,
                      new_items=new_items, notes=notes)
