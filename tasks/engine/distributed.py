@@ -277,11 +277,12 @@ def fit_distributed(organic: pd.DataFrame, probe: pd.DataFrame, scale: ScaleConf
             calib = StepCalibration(t, s_, ref_profiles if n_refs else None, probe_target,
                                     debias.probe_target_weight, debias.calibration_weight, n_steps / global_visits)
         se_sum, term_sum = 0.0, 0.0
+        S_u, S_i, S_r, S_w = T_u[perm], T_i[perm], T_r[perm], T_w[perm]    # one gather per round, as in fit()
         for step in range(n_steps):
-            b = perm[step * my_bs:(step + 1) * my_bs]
+            b = slice(step * my_bs, (step + 1) * my_bs)
             pick = visit_order[step * visits // n_steps:(step + 1) * visits // n_steps] if calib else None
             norm = float(step_count[step])
-            loss, se, term = step_loss(model, T_u[b], T_i[b], T_r[b], T_w[b], norm, model_cfg.weight_decay,
+            loss, se, term = step_loss(model, S_u[b], S_i[b], S_r[b], S_w[b], norm, model_cfg.weight_decay,
                                        pick, profiles.step_items(gen) if pick is not None and len(pick) else None, calib)
             optimiser.zero_grad(set_to_none=True)
             loss.backward()
