@@ -23,6 +23,12 @@ ratings, log-log, with a line of slope 1 for reference).
     python bench/bench_nightly.py --sizes 30M --logs /tmp/tarewise-bench-logs
     python bench/bench_nightly.py --sizes 1M --profile     # pyinstrument text profile of the measured night
     python bench/bench_nightly.py --render                 # re-render table and plot from nightly.json
+    python bench/bench_nightly.py --sizes 1M,10M --shared  # + cost of the shared copy (paths.shared)
+
+With ``--shared`` both nights also bring a shared copy (``paths.shared``, a ``file://`` folder on the same
+disk) up to date: the seed night's copy is the first, whole one (the stored days, the seed version); the
+measured night's copy is what every later night sends (one day, one version). Those rows are kept apart
+from the main table.
 """
 
 from __future__ import annotations
@@ -129,7 +135,7 @@ def bare_plain_epoch(organic, dim: int, batch: int, lr: float, weight_decay: flo
 # ---------------------------------------------------------------------------------------------
 
 def run_case(size: str, logs: Path, work: Path, method: str, seed_epochs: int, runner: str,
-             profile: Path | None) -> dict:
+             profile: Path | None, shared: bool = False) -> dict:
     os.environ["PREFECT_HOME"] = str(work / "prefect-home")
     os.environ.setdefault("PREFECT_LOGGING_LEVEL", "WARNING")
     os.environ.setdefault("PREFECT_SERVER_ANALYTICS_ENABLED", "false")
@@ -150,11 +156,12 @@ def run_case(size: str, logs: Path, work: Path, method: str, seed_epochs: int, r
     if len(dates) < 3:
         raise SystemExit(f"{logs}: need at least 3 daily partitions, found {len(dates)}")
     cfg = Config().updated({"window.days": len(dates), "debias.method": method, "model.threads": 1,
-                            "runtime.runner": runner}).with_overrides(logs=str(logs), workspace=str(work / "ws"))
+                            "runtime.runner": runner}).with_overrides(
+        logs=str(logs), workspace=str(work / "ws"), shared=(work / "shared").as_uri() if shared else "")
     ws = Workspace.at(cfg.paths.workspace)
     files = {d: [str(p) for p in sorted((logs / f"dt={d}").glob("*.parquet"))] for d in dates}
     stored, seed_day, night_day = dates[:-2], dates[-2], dates[-1]
-    out: dict = {"size": size, "method": method, "runner": runner, "days": len(dates)}
+    out: dict = {"size": size, "method": method, "runner": runner, "days": len(dates), "shared": shared}
 
     # 1. store the first days with the plain ingest functions (what the ingest tasks call)
     pre_files = [f for d in stored for f in files[d]]
@@ -211,6 +218,8 @@ def run_case(size: str, logs: Path, work: Path, method: str, seed_epochs: int, r
     out["evaluation"] = {k: (v["mae"] if v else None) for k, v in night["evaluation"].items()}
     out["state"] = night["state"]
     out["seed_state"] = seed["state"]
+    if shared:
+        out["shared_seed"], out["shared_night"] = seed["shared"], night["shared"]
 
     # 4. references on the same data
     out["bare_read_night_s"] = bare_read_seconds(files[night_day], repeats=5)
@@ -228,12 +237,15 @@ def run_case(size: str, logs: Path, work: Path, method: str, seed_epochs: int, r
     return out
 
 
-def _subprocess_case(size: str, logs: Path, method: str, seed_epochs: int, runner: str, profile: bool) -> dict:
+def _subprocess_case(size: str, logs: Path, method: str, seed_epochs: int, runner: str, profile: bool,
+                     shared: bool = False) -> dict:
     with tempfile.TemporaryDirectory(prefix=f"tarewise-bench-night-{size}-") as tmp:
         cmd = [sys.executable, str(Path(__file__).resolve()), "--case", size, "--logs", str(logs), "--work", tmp,
                "--method", method, "--seed-epochs", str(seed_epochs), "--runner", runner]
         if profile:
             cmd += ["--profile"]
+        if shared:
+            cmd += ["--shared"]
         env = {**os.environ, "PYTHONPATH": str(ROOT), "OMP_NUM_THREADS": "1"}
         done = subprocess.run(cmd, capture_output=True, text=True, env=env, cwd=ROOT)
     if done.returncode != 0:
@@ -292,6 +304,20 @@ def render_tables(results: dict, info: dict) -> str:
     return "\n".join(lines) + "\n"
 
 
+def render_shared(results: dict) -> str:
+    """The shared copy's cost: the first copy (seed night) and a night's increment (measured night)."""
+    lines = ["Shared copy (paths.shared = a file:// folder on the same disk; copy time after the night's "
+             "ledger row, so not in the stage table):", "",
+             "| size | first copy: files | MB | s | a night's copy: files | MB | s | night total (s) | copy / night |",
+             "|---|" + "---:|" * 8]
+    for r in _order(results):
+        a, b = r["shared_seed"], r["shared_night"]
+        lines.append(f"| {r.get('label', r['size'])} | {a['files']} | {a['bytes'] / 1e6:.0f} | {a['seconds']:.1f} "
+                     f"| {b['files']} | {b['bytes'] / 1e6:.0f} | {b['seconds']:.1f} | {r['night_s']:.0f} "
+                     f"| {b['seconds'] / r['night_s']:.1%} |")
+    return "\n".join(lines) + "\n"
+
+
 def render_plot(results: dict, path: Path) -> None:
     import matplotlib
     matplotlib.use("Agg")
@@ -331,12 +357,14 @@ def main() -> None:
     ap.add_argument("--runner", default="thread", choices=["thread", "dask"])
     ap.add_argument("--profile", action="store_true", help="write bench/out/profile-<size>.txt (pyinstrument)")
     ap.add_argument("--render", action="store_true", help="only re-render table and plot from nightly.json")
+    ap.add_argument("--shared", action="store_true", help="also keep a shared copy (paths.shared) and time it")
     ap.add_argument("--case", help=argparse.SUPPRESS)
     ap.add_argument("--work", help=argparse.SUPPRESS)
     args = ap.parse_args()
     if args.case:
         prof = OUT / f"profile-{args.case}.txt" if args.profile else None
-        r = run_case(args.case, Path(args.logs), Path(args.work), args.method, args.seed_epochs, args.runner, prof)
+        r = run_case(args.case, Path(args.logs), Path(args.work), args.method, args.seed_epochs, args.runner, prof,
+                     args.shared)
         print(json.dumps(r, default=float))
         return
     sys.path.insert(0, str(ROOT / "bench"))
@@ -352,20 +380,25 @@ def main() -> None:
             print(f"{size}: logs in {folder} ({'reused' if not gen_s else f'generated in {gen_s:.0f} s'})",
                   file=sys.stderr, flush=True)
             t0 = time.perf_counter()
-            r = _subprocess_case(size, folder, args.method, args.seed_epochs, args.runner, args.profile)
+            r = _subprocess_case(size, folder, args.method, args.seed_epochs, args.runner, args.profile, args.shared)
             r["case_wall_s"] = time.perf_counter() - t0
             key = size if args.method == "calibrated" and args.runner == "thread" else f"{size}-{args.method}-{args.runner}"
+            key += "-shared" if args.shared else ""
             r["label"] = key
             saved["results"][key] = r
             OUT.mkdir(parents=True, exist_ok=True)
             store_path.write_text(json.dumps(saved, indent=1, default=float))
             print(f"{size}: night {r['night_s']:.0f} s, stages {r['durations']}, peak {r['peak_rss_mb']:.0f} MB",
                   file=sys.stderr, flush=True)
-    main_rows = {k: v for k, v in saved["results"].items() if v["method"] == "calibrated" and v["runner"] == "thread"}
+    main_rows = {k: v for k, v in saved["results"].items()
+                 if v["method"] == "calibrated" and v["runner"] == "thread" and not v.get("shared")}
     text = "# Nightly benchmark\n\n" + render_tables(main_rows, saved["machine"])
     others = {k: v for k, v in saved["results"].items() if k not in main_rows}
     if others:
         text += "\nOther settings (candidate method / runner as named):\n\n" + render_tables(others, saved["machine"])
+    with_shared = {k: v for k, v in saved["results"].items() if v.get("shared")}
+    if with_shared:
+        text += "\n" + render_shared(with_shared)
     (OUT / "nightly.md").write_text(text)
     render_plot(main_rows, OUT / "nightly.png")
     print(text)

@@ -14,8 +14,8 @@ from typing import Literal
 
 from prefect import flow, get_run_logger
 
-from flows.nightly import nightly_for
-from tasks import failpoints, ledger, runners, sweep as sweeps
+from flows.nightly import nightly_for, push_to_shared
+from tasks import failpoints, ledger, runners, steps, sweep as sweeps
 from tasks.backfill_plan import chain_head, date_range, make_live_for, plan_backfill
 from tasks.config import Config
 from tasks.lock import workspace_lock
@@ -52,6 +52,7 @@ def backfill(cfg: Config, start: str, end: str, live: Literal["last", "each"] = 
         run_night = nightly_for(cfg, dask_address=cluster)
         if held["took_over"]:
             log.warning("took over a stale workspace lock left by %s", held["took_over"].get("what"))
+        steps.restore_shared(cfg)
         for run_id in ledger.mark_interrupted(ws):
             log.warning("run %s in the ledger never finished (its process died); marked interrupted", run_id)
         plan = plan_backfill(ws, cfg, start, end, force)
@@ -77,6 +78,8 @@ def backfill(cfg: Config, start: str, end: str, live: Literal["last", "each"] = 
             log.info("%s: %s %s (%s)", p.run_date, out["status"], out.get("version_id") or "", out.get("state") or "")
             failpoints.hit("backfill:date-done")
         retention = apply_retention_logged(cfg, ws, default_as_of(ws, cfg.runtime.timezone), log)
+        if cfg.paths.shared:
+            push_to_shared(cfg, f"backfill {start}..{end} is done here")
         return {"start": start, "end": end, "live_mode": live, "nights": nights, "skipped": skipped,
                 "live_version": live_version(ws), "retention": retention.to_dict() if retention else None}
 

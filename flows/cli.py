@@ -27,6 +27,8 @@ LogsOpt = typer.Option(None, "--logs", help="Logs folder or URI; overrides confi
 WorkspaceOpt = typer.Option(None, "--workspace", help="Workspace folder; overrides config and TAREWISE_WORKSPACE.")
 RunnerOpt = typer.Option(None, "--runner", help="Task runner for the parallel parts of a night: 'thread' or 'dask' "
                          "(overrides runtime.runner).")
+SharedOpt = typer.Option(None, "--shared", help="Shared copy (pyarrow.fs URI or folder); overrides config and "
+                         "TAREWISE_SHARED; '' turns it off.")
 DaskAddressOpt = typer.Option(None, "--dask-address", help="Existing Dask scheduler, e.g. tcp://host:8786 "
                               "(overrides runtime.dask_address; implies --runner dask).")
 
@@ -40,10 +42,10 @@ def _prefect_env(workspace: str, verbose: bool = False) -> None:
     os.environ.setdefault("DO_NOT_TRACK", "1")
 
 
-def load(config: Optional[Path], logs: Optional[str], workspace: Optional[str]):
+def load(config: Optional[Path], logs: Optional[str], workspace: Optional[str], shared: Optional[str] = None):
     from tasks.config import ConfigError, load_config
     try:
-        cfg = load_config(config, logs=logs, workspace=workspace)
+        cfg = load_config(config, logs=logs, workspace=workspace, shared=shared)
     except ConfigError as exc:
         err.print(f"[bold red]config error[/]: {exc}", markup=True, highlight=False)
         raise typer.Exit(2)
@@ -52,7 +54,8 @@ def load(config: Optional[Path], logs: Optional[str], workspace: Optional[str]):
         # Checked before anything touches the path (Prefect's home folder lives in the workspace).
         err.print(f"[bold red]config error[/]: paths.workspace = {ws!r}: the workspace must be a local or "
                   "shared POSIX folder (publishing a version relies on an atomic rename, which object stores "
-                  "lack); logs may live on an object store (paths.logs / --logs).", highlight=False)
+                  "lack); logs may live on an object store (paths.logs / --logs), and a copy of the store and "
+                  "versions too (paths.shared / --shared).", highlight=False)
         raise typer.Exit(2)
     return cfg.with_overrides(workspace=ws.removeprefix("file://")) if ws.startswith("file://") else cfg
 
@@ -86,10 +89,10 @@ def _fail(exc: BaseException, what: str) -> None:
 def run(date: Optional[str] = typer.Option(None, "--date", "-d", help="Run date YYYY-MM-DD (default: yesterday "
                                           "in runtime.timezone)."),
         config: Optional[Path] = ConfigOpt, logs: Optional[str] = LogsOpt, workspace: Optional[str] = WorkspaceOpt,
-        runner: Optional[str] = RunnerOpt, dask_address: Optional[str] = DaskAddressOpt,
-        verbose: bool = typer.Option(False, "--verbose", "-v")) -> None:
+        shared: Optional[str] = SharedOpt, runner: Optional[str] = RunnerOpt,
+        dask_address: Optional[str] = DaskAddressOpt, verbose: bool = typer.Option(False, "--verbose", "-v")) -> None:
     """One nightly run. Exits non-zero on failure; the live version is then untouched."""
-    cfg = with_runner(load(config, logs, workspace), runner, dask_address)
+    cfg = with_runner(load(config, logs, workspace, shared), runner, dask_address)
     _prefect_env(cfg.paths.workspace, verbose)
     from tasks.lock import LockHeld, check_free
     from tasks.workspace import Workspace
@@ -327,10 +330,11 @@ def backfill(start: str = typer.Option(..., "--start", help="First date YYYY-MM-
                                                         "the range once per combination, each in a scratch "
                                                         "workspace, and print the held-out probe MAE table."),
              config: Optional[Path] = ConfigOpt, logs: Optional[str] = LogsOpt, workspace: Optional[str] = WorkspaceOpt,
-             runner: Optional[str] = RunnerOpt, dask_address: Optional[str] = DaskAddressOpt,
+             shared: Optional[str] = SharedOpt, runner: Optional[str] = RunnerOpt,
+             dask_address: Optional[str] = DaskAddressOpt,
              verbose: bool = typer.Option(False, "--verbose", "-v")) -> None:
     """Replay past nights date by date, carrying the model forward; resumable, skips dates already done."""
-    cfg = with_runner(load(config, logs, workspace), runner, dask_address)
+    cfg = with_runner(load(config, logs, workspace, shared), runner, dask_address)
     from tasks.backfill_plan import LIVE_MODES, BackfillError, plan_backfill, typical_night_seconds
     from tasks.workspace import Workspace
     if live not in LIVE_MODES:
@@ -451,9 +455,10 @@ def _sweep(cfg, ws, start: str, end: str, specs: list[str], dry_run: bool, verbo
 @app.command()
 def status(runs: int = typer.Option(10, "--runs", help="How many ledger rows to show."),
            days: int = typer.Option(7, "--days", help="Alerts of this many nights up to the newest run."),
-           config: Optional[Path] = ConfigOpt, workspace: Optional[str] = WorkspaceOpt) -> None:
-    """Live version, lock, last runs from the ledger, and recent alerts."""
-    cfg = load(config, None, workspace)
+           config: Optional[Path] = ConfigOpt, workspace: Optional[str] = WorkspaceOpt,
+           shared: Optional[str] = SharedOpt) -> None:
+    """Live version, shared copy, lock, last runs from the ledger, and recent alerts."""
+    cfg = load(config, None, workspace, shared)
     from tasks.operations import status as workspace_status
     from tasks.workspace import Workspace
     s = workspace_status(Workspace.at(cfg.paths.workspace), cfg.runtime.timezone, cfg.runtime.lock_stale_seconds,
@@ -466,6 +471,14 @@ def status(runs: int = typer.Option(10, "--runs", help="How many ledger rows to 
                       f"since {lv['since']}: {lv['reason']}", highlight=False)
     else:
         console.print("live: none yet")
+    if cfg.paths.shared:
+        from tasks.shared_copy import SharedCopyError, pending_files
+        try:
+            n = pending_files(Workspace.at(cfg.paths.workspace), cfg.paths.shared)
+            console.print(f"shared copy: {cfg.paths.shared}: " + (f"{n} file(s) not copied yet (`tarewise share`)"
+                                                                 if n else "up to date"), highlight=False)
+        except SharedCopyError as exc:
+            console.print(f"shared copy: {exc}", highlight=False)
     lk = s["lock"]
     if lk:
         state = "stale (will be taken over)" if lk["stale"] else "held"
@@ -497,9 +510,11 @@ def status(runs: int = typer.Option(10, "--runs", help="How many ledger rows to 
 @app.command()
 def rollback(to: str = typer.Option(..., "--to", help="Version id to make live again (see `tarewise versions`)."),
              reason: str = typer.Option("manual rollback", "--reason", help="Recorded in the ledger and pointer."),
-             config: Optional[Path] = ConfigOpt, workspace: Optional[str] = WorkspaceOpt) -> None:
-    """Make an earlier version live again (one atomic switch), recorded in the run ledger."""
-    cfg = load(config, None, workspace)
+             config: Optional[Path] = ConfigOpt, workspace: Optional[str] = WorkspaceOpt,
+             shared: Optional[str] = SharedOpt) -> None:
+    """Make an earlier version live again (one atomic switch), recorded in the run ledger; then the
+    shared copy, if one is set, follows."""
+    cfg = load(config, None, workspace, shared)
     from tasks.lock import LockHeld
     from tasks.operations import RollbackError, rollback as do_rollback
     from tasks.workspace import Workspace
@@ -515,14 +530,17 @@ def rollback(to: str = typer.Option(..., "--to", help="Version id to make live a
     if out["state_before"] == "held":
         err.print(f"note: {to} was held by the promotion gate when it was published (see `tarewise versions`)")
     console.print(f"live: {out['previous'] or 'none'} -> {out['live']} (ledger run {out['run_id']})", highlight=False)
+    _share_after(cfg, f"rollback to {to} is done here")
 
 
 @app.command()
 def prune(as_of: Optional[str] = typer.Option(None, "--as-of", help="Reference date for the day-based limits "
                                               "(default: newest completed run date in the ledger)."),
-          config: Optional[Path] = ConfigOpt, workspace: Optional[str] = WorkspaceOpt) -> None:
-    """Apply the retention settings: old versions (never live or pinned), quarantine and metrics by days."""
-    cfg = load(config, None, workspace)
+          config: Optional[Path] = ConfigOpt, workspace: Optional[str] = WorkspaceOpt,
+          shared: Optional[str] = SharedOpt) -> None:
+    """Apply the retention settings: old versions (never live or pinned), quarantine and metrics by days;
+    then the shared copy, if one is set, follows."""
+    cfg = load(config, None, workspace, shared)
     from tasks.ingest import IngestError, parse_run_date
     from tasks.lock import LockHeld, workspace_lock
     from tasks.retention import apply_retention, default_as_of
@@ -541,6 +559,90 @@ def prune(as_of: Optional[str] = typer.Option(None, "--as-of", help="Reference d
         err.print(f"[bold red]prune refused[/]: {exc}", highlight=False)
         raise typer.Exit(1)
     console.print(result.summary(), highlight=False)
+    _share_after(cfg, "prune is done here")
+
+
+def _share_after(cfg, done: str) -> None:
+    """After a command that changed the workspace: bring the shared copy up to date (holding the lock)."""
+    if not cfg.paths.shared:
+        return
+    from tasks.lock import LockHeld, workspace_lock
+    from tasks.shared_copy import SharedCopy, SharedCopyError, push
+    from tasks.workspace import Workspace
+    ws = Workspace.at(cfg.paths.workspace)
+    try:
+        with workspace_lock(ws.lock, "copy to the shared copy", cfg.runtime.lock_stale_seconds):
+            console.print(push(ws, SharedCopy.at(cfg.paths.shared, ws)).summary(), highlight=False)
+    except (SharedCopyError, LockHeld) as exc:
+        err.print(f"[bold red]{done}, but the shared copy was not updated[/]: {exc}\n"
+                  "run `tarewise share` to catch up", highlight=False)
+        raise typer.Exit(1)
+
+
+@app.command()
+def share(dry_run: bool = typer.Option(False, "--dry-run", help="List what would be copied and removed; change "
+                                       "nothing."),
+          take_over: bool = typer.Option(False, "--take-over", help="Write even though the shared copy's live "
+                                         "pointer was written by another workspace (this one becomes its only "
+                                         "writer)."),
+          config: Optional[Path] = ConfigOpt, workspace: Optional[str] = WorkspaceOpt,
+          shared: Optional[str] = SharedOpt) -> None:
+    """Bring the shared copy (paths.shared) up to date now: new partitions and versions, then the live
+    pointer, then removals. Nights do this themselves; use it to catch up after a failed copy."""
+    cfg = load(config, None, workspace, shared)
+    if not cfg.paths.shared:
+        err.print("no shared copy configured: set paths.shared in the config, TAREWISE_SHARED, or --shared")
+        raise typer.Exit(2)
+    from tasks.lock import LockHeld, workspace_lock
+    from tasks.shared_copy import SharedCopy, SharedCopyError, SharedCopyRefused, plan_push, push
+    from tasks.workspace import Workspace
+    ws = Workspace.at(cfg.paths.workspace)
+    try:
+        target = SharedCopy.at(cfg.paths.shared, ws)
+        if dry_run:
+            plan = plan_push(ws, target)
+            for rel in plan.uploads:
+                console.print(f"copy   {rel}", highlight=False)
+            for rel in plan.clears + plan.deletes:
+                console.print(f"remove {rel}", highlight=False)
+            console.print(f"{len(plan.uploads)} file(s) to copy ({plan.bytes / 1e6:.1f} MB), "
+                          f"{len(plan.clears) + len(plan.deletes)} "
+                          f"to remove on {target.uri}", highlight=False)
+            return
+        with workspace_lock(ws.lock, "copy to the shared copy", cfg.runtime.lock_stale_seconds):
+            console.print(push(ws, target, take_over=take_over).summary(), highlight=False)
+    except SharedCopyRefused as exc:
+        err.print(f"[bold red]share refused[/]: {exc}", highlight=False)
+        raise typer.Exit(2)
+    except (SharedCopyError, LockHeld) as exc:
+        err.print(f"[bold red]share failed[/]: {exc}", highlight=False)
+        raise typer.Exit(1)
+
+
+@app.command()
+def restore(config: Optional[Path] = ConfigOpt, workspace: Optional[str] = WorkspaceOpt,
+            shared: Optional[str] = SharedOpt) -> None:
+    """Fill the workspace from the shared copy: every partition, whole version and history it lacks,
+    and the live pointer if it has none. Nothing local is overwritten. (A night on a workspace that
+    has never run does this by itself.)"""
+    cfg = load(config, None, workspace, shared)
+    if not cfg.paths.shared:
+        err.print("no shared copy configured: set paths.shared in the config, TAREWISE_SHARED, or --shared")
+        raise typer.Exit(2)
+    from tasks.lock import LockHeld, workspace_lock
+    from tasks.shared_copy import SharedCopy, SharedCopyError, SharedCopyRefused, restore as do_restore
+    from tasks.workspace import Workspace
+    ws = Workspace.at(cfg.paths.workspace)
+    try:
+        target = SharedCopy.at(cfg.paths.shared, ws)
+        with workspace_lock(ws.lock, "restore from the shared copy", cfg.runtime.lock_stale_seconds):
+            console.print(do_restore(ws, target).summary(), highlight=False)
+    except SharedCopyRefused as exc:
+        err.print(f"[bold red]config error[/]: {exc}", highlight=False)
+        raise typer.Exit(2)
+    except (SharedCopyError, LockHeld) as exc:
+        err.print(f"[bold red]restore failed[/]: {exc}", highlight=False)
+        raise typer.Exit(1)
 
 
 @app.command()

@@ -67,9 +67,9 @@ def scheduled_backfill(settings: dict, start: str, end: str, live: Literal["last
 def deployment_settings(cfg: Config) -> dict:
     """The validated config as JSON, with local paths made absolute (runs may start elsewhere)."""
     raw = cfg.model_dump(mode="json")
-    for key in ("logs", "workspace"):
+    for key in ("logs", "workspace", "shared"):
         value = raw["paths"][key]
-        if "://" not in value:
+        if value and "://" not in value:
             raw["paths"][key] = str(Path(value).expanduser().resolve())
     return raw
 

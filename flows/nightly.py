@@ -16,6 +16,7 @@ from tasks.lock import workspace_lock
 from tasks.manifest import build_manifest
 from tasks.night_report import report_night
 from tasks.retention import apply_retention_logged
+from tasks.shared_copy import SharedCopyError
 from tasks.skew_metrics import user_skew_segments
 from tasks.workspace import Workspace
 
@@ -52,6 +53,7 @@ def nightly(cfg: Config, run_date: str | None = None, kind: str = "nightly", mak
     run_date = run_date or yesterday(cfg.runtime.timezone)
     if take_lock:
         with workspace_lock(ws.lock, f"{kind} run for {run_date}", cfg.runtime.lock_stale_seconds):
+            _io(steps.restore_shared, cfg)(cfg)
             # Holding the lock, no other run of this workspace is alive: "running" rows are dead runs.
             for run_id in ledger.mark_interrupted(ws):
                 get_run_logger().warning("run %s never finished (killed or crashed); marked interrupted", run_id)
@@ -69,6 +71,30 @@ def nightly_for(cfg: Config, dask_address: str | None = None, **options):
 
 
 def _night(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool, base_from: str | None) -> dict:
+    out = _work(cfg, ws, run_date, kind, make_live, base_from)
+    if cfg.paths.shared:
+        out["shared"] = push_to_shared(cfg, f"night {run_date} is {out['status']} here"
+                                       + (f" (version {out['version_id']}, {out['state']})"
+                                          if out.get("version_id") else ""))
+    return out
+
+
+def push_to_shared(cfg: Config, done: str) -> dict:
+    """Copy the workspace's news to ``paths.shared``; returns files, bytes and seconds. Runs after the
+    ledger has recorded the night, so a failure here does not undo the night: the flow fails, saying
+    what is done and how it catches up."""
+    t0 = time.perf_counter()
+    try:
+        result = _io(steps.push_shared, cfg)(cfg)
+        return {"files": result.uploaded, "bytes": result.bytes, "removed": result.deleted,
+                "seconds": round(time.perf_counter() - t0, 3)}
+    except Exception as exc:  # noqa: BLE001 - re-raised with what is done and what is not
+        raise SharedCopyError(f"{done}, but the shared copy {cfg.paths.shared} was not brought up to date "
+                              f"({type(exc).__name__}: {exc}); it still serves its previous live version. "
+                              "The next night, or `tarewise share`, catches up.") from exc
+
+
+def _work(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool, base_from: str | None) -> dict:
     log = get_run_logger()
     for name in versions.clean_staging(ws):
         log.warning("removed half-written version %s left by an interrupted run", name)

@@ -25,11 +25,36 @@ class _Section(BaseModel):
     model_config = ConfigDict(extra="forbid", frozen=True)
 
 
+#: URI schemes ``pyarrow.fs.FileSystem.from_uri`` understands (pyarrow's filesystem documentation).
+SHARED_SCHEMES = ("file", "s3", "gs", "gcs", "hdfs", "viewfs", "abfs", "abfss")
+
+
 class PathsConfig(_Section):
     logs: str = Field("sample_parquet", description="Where daily logs are read: <logs>/dt=YYYY-MM-DD/*.parquet. "
                       "Local path or pyarrow.fs URI. Overridden by --logs / TAREWISE_LOGS.")
-    workspace: str = Field(".tarewise", description="Where tarewise keeps all its state. "
-                           "Overridden by --workspace / TAREWISE_WORKSPACE.")
+    workspace: str = Field(".tarewise", description="Where tarewise keeps all its state: a local or mounted "
+                           "POSIX folder. Overridden by --workspace / TAREWISE_WORKSPACE.")
+    shared: str = Field("", description="Optional shared copy of the store, versions and live pointer on an object "
+                        "store or another folder: a pyarrow.fs URI (s3://bucket/prefix?region=..., gs://bucket/"
+                        "prefix, file:///path) or a path. Brought up to date after every night (live pointer "
+                        "last); a new workspace restores from it. Empty: none. Overridden by --shared / "
+                        "TAREWISE_SHARED.")
+
+    @model_validator(mode="after")
+    def _shared_scheme(self) -> "PathsConfig":
+        if "://" in self.shared:
+            scheme = self.shared.split("://", 1)[0].lower()
+            if scheme not in SHARED_SCHEMES:
+                raise ValueError(f"paths.shared = {self.shared!r}: unknown scheme {scheme!r}; use one of "
+                                 f"{', '.join(SHARED_SCHEMES)} or a folder path")
+        local = self.shared.removeprefix("file://") if "://" not in self.shared.removeprefix("file://") else None
+        if self.shared and local is not None and "://" not in self.workspace:
+            here = Path(local).expanduser().resolve()
+            ws = Path(self.workspace.removeprefix("file://")).expanduser().resolve()
+            if here == ws or ws in here.parents or here in ws.parents:
+                raise ValueError(f"paths.shared = {self.shared!r} overlaps paths.workspace = {self.workspace!r}; "
+                                 "the shared copy must be a folder outside the workspace")
+        return self
 
 
 class ColumnsConfig(_Section):
@@ -251,9 +276,14 @@ class Config(_Section):
     drift: DriftConfig = DriftConfig()
     alerts: AlertsConfig = AlertsConfig()
 
-    def with_overrides(self, logs: str | None = None, workspace: str | None = None) -> "Config":
-        """Copy with the two paths replaced (CLI flags win over env vars, which win over the file)."""
-        paths = self.paths.model_copy(update={k: v for k, v in {"logs": logs, "workspace": workspace}.items() if v})
+    def with_overrides(self, logs: str | None = None, workspace: str | None = None,
+                       shared: str | None = None) -> "Config":
+        """Copy with the paths replaced (CLI flags win over env vars, which win over the file).
+        ``shared=""`` turns the shared copy off; ``None`` leaves it as it is."""
+        update = {k: v for k, v in {"logs": logs, "workspace": workspace}.items() if v}
+        if shared is not None:
+            update["shared"] = shared
+        paths = PathsConfig.model_validate({**self.paths.model_dump(), **update}) if update else self.paths
         return self.model_copy(update={"paths": paths})
 
     def updated(self, dotted: dict[str, object]) -> "Config":
@@ -272,16 +302,16 @@ class Config(_Section):
         return parse_config(raw, source="<override>")
 
     def digest(self) -> str:
-        """Stable short hash of every setting except the two paths (which vary by environment)."""
+        """Stable short hash of every setting except the paths (which vary by environment)."""
         raw = self.model_dump(mode="json")
         raw.pop("paths", None)
         return hashlib.sha256(json.dumps(raw, sort_keys=True).encode()).hexdigest()[:16]
 
 
-def _format_error(err: ValidationError, source: str) -> str:
+def _format_error(err: ValidationError, source: str, prefix: tuple[str, ...] = ()) -> str:
     lines = [f"invalid config in {source}:"]
     for e in err.errors():
-        key = ".".join(str(p) for p in e["loc"]) or "<top level>"
+        key = ".".join(str(p) for p in (*prefix, *e["loc"])) or "<top level>"
         if e["type"] == "extra_forbidden":
             lines.append(f"  {key}: unknown key (check spelling; see configs/example.toml)")
         else:
@@ -296,10 +326,11 @@ def parse_config(raw: dict, source: str = "<dict>") -> Config:
         raise ConfigError(_format_error(err, source)) from None
 
 
-def load_config(path: str | Path | None = None, logs: str | None = None, workspace: str | None = None) -> Config:
+def load_config(path: str | Path | None = None, logs: str | None = None, workspace: str | None = None,
+                shared: str | None = None) -> Config:
     """Read and validate a TOML config (defaults when ``path`` is None); apply path overrides.
 
-    Precedence for the two paths: explicit argument > TAREWISE_LOGS / TAREWISE_WORKSPACE > file.
+    Precedence for the paths: explicit argument > TAREWISE_LOGS / TAREWISE_WORKSPACE / TAREWISE_SHARED > file.
     """
     raw: dict = {}
     source = "<defaults>"
@@ -313,8 +344,12 @@ def load_config(path: str | Path | None = None, logs: str | None = None, workspa
         except tomllib.TOMLDecodeError as exc:
             raise ConfigError(f"config file {p} is not valid TOML: {exc}") from None
     cfg = parse_config(raw, source)
-    return cfg.with_overrides(logs=logs or os.environ.get("TAREWISE_LOGS"),
-                              workspace=workspace or os.environ.get("TAREWISE_WORKSPACE"))
+    try:
+        return cfg.with_overrides(logs=logs or os.environ.get("TAREWISE_LOGS"),
+                                  workspace=workspace or os.environ.get("TAREWISE_WORKSPACE"),
+                                  shared=shared if shared is not None else os.environ.get("TAREWISE_SHARED"))
+    except ValidationError as err:
+        raise ConfigError(_format_error(err, "command line / environment", ("paths",))) from None
 
 
 def render_example() -> str:

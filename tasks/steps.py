@@ -12,7 +12,7 @@ import pandas as pd
 from prefect import get_run_logger, task
 from prefect.cache_policies import NO_CACHE
 
-from . import evaluation, ingest, predictions, store, training, versions
+from . import evaluation, ingest, predictions, shared_copy, store, training, versions
 from .config import Config
 from .engine.checkpoint import Checkpoint
 from .workspace import Workspace
@@ -125,3 +125,25 @@ def publish_version(cfg: Config, version_id: str, candidate: Checkpoint, shadow:
         versions.set_live(ws, version_id, reason=f"promoted by gate on run {manifest['run_date']}")
         return "live"
     return "candidate" if manifest["gate"]["promote"] else "held"
+
+
+@task(name="restore-from-shared-copy", **IO)
+def restore_shared(cfg: Config) -> shared_copy.RestoreResult | None:
+    """A workspace that has never run starts from the shared copy (``paths.shared``), if one is set."""
+    ws = Workspace.at(cfg.paths.workspace)
+    if not cfg.paths.shared or not shared_copy.is_new(ws):
+        return None
+    result = shared_copy.restore(ws, shared_copy.SharedCopy.at(cfg.paths.shared, ws))
+    get_run_logger().info(result.summary())
+    return result
+
+
+@task(name="push-to-shared-copy", **IO)
+def push_shared(cfg: Config) -> shared_copy.PushResult | None:
+    """Bring the shared copy up to date with the workspace (live pointer last), if one is set."""
+    if not cfg.paths.shared:
+        return None
+    ws = Workspace.at(cfg.paths.workspace)
+    result = shared_copy.push(ws, shared_copy.SharedCopy.at(cfg.paths.shared, ws))
+    get_run_logger().info(result.summary())
+    return result

@@ -99,10 +99,10 @@ def sweep_root(ws: Workspace, start: str, end: str) -> Path:
 
 
 def scratch_config(cfg: Config, overrides: dict[str, object], scratch: Path) -> Config:
-    """The setting's config: the main config with ``overrides``, its own workspace, and no alert
-    receivers (history is still recorded in the scratch workspace)."""
+    """The setting's config: the main config with ``overrides``, its own workspace, no alert
+    receivers (history is still recorded in the scratch workspace) and no shared copy."""
     silent = {"alerts.webhook_url_env": SILENT_WEBHOOK_ENV, "alerts.prefect_blocks": []}
-    return cfg.updated({**overrides, **silent}).with_overrides(workspace=str(scratch))
+    return cfg.updated({**overrides, **silent}).with_overrides(workspace=str(scratch), shared="")
 
 
 def prepare_scratch(main: Workspace, scratch: Path, start: str, window_days: int) -> Workspace:

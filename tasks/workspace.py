@@ -11,6 +11,7 @@ Layout under the workspace root (all created on demand)::
     reports/YYYY-MM-DD.html|.json        nightly report and its JSON twin
     alerts/history.jsonl                 every alert ever raised, with delivery outcome
     lock                                 store lock (one run at a time)
+    shared-copy.json                     what was copied to the shared copy (tasks/shared_copy.py)
     sweeps/<start>_<end>/s<k>/           scratch workspaces of a settings sweep (tasks/sweep.py)
     prefect-results/                     Prefect result persistence
 """
@@ -57,8 +58,9 @@ def atomic_write_json(path: Path, obj: object) -> None:
 
 @dataclass(frozen=True)
 class Workspace:
-    """Typed access to the workspace layout. State lives on the local filesystem today
-    (atomic rename is what makes publishing crash-safe); logs may be any ``pyarrow.fs`` URI."""
+    """Typed access to the workspace layout. State lives on a local (or mounted POSIX) filesystem:
+    atomic rename is what makes publishing crash-safe. Logs may be any ``pyarrow.fs`` URI, and
+    ``paths.shared`` keeps a copy of the store and versions on one (``tasks/shared_copy.py``)."""
 
     root: Path
 
@@ -66,8 +68,9 @@ class Workspace:
     def at(cls, path: str | os.PathLike) -> "Workspace":
         p = str(path)
         if "://" in p and not p.startswith("file://"):
-            raise ValueError(f"workspace {p!r}: only local workspaces are supported for now "
-                             "(atomic publish relies on rename); logs may be remote")
+            raise ValueError(f"workspace {p!r}: the workspace must be a local or mounted folder (atomic "
+                             "publish relies on rename); logs may be remote, and paths.shared keeps a copy "
+                             "of the store and versions on an object store")
         p = p.removeprefix("file://")
         root = Path(p).expanduser().resolve()
         root.mkdir(parents=True, exist_ok=True)
