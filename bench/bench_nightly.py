@@ -312,9 +312,9 @@ def render_shared(results: dict) -> str:
              "|---|" + "---:|" * 8]
     for r in _order(results):
         a, b = r["shared_seed"], r["shared_night"]
-        lines.append(f"| {r.get('label', r['size'])} | {a['files']} | {a['bytes'] / 1e6:.0f} | {a['seconds']:.1f} "
-                     f"| {b['files']} | {b['bytes'] / 1e6:.0f} | {b['seconds']:.1f} | {r['night_s']:.0f} "
-                     f"| {b['seconds'] / r['night_s']:.1%} |")
+        lines.append(f"| {r.get('label', r['size'])} | {a['files']} | {a['bytes'] / 1e6:.0f} | {a['seconds']:.2f} "
+                     f"| {b['files']} | {b['bytes'] / 1e6:.0f} | {b['seconds']:.2f} | {r['night_s']:.0f} "
+                     f"| {b['seconds'] / r['night_s']:.2%} |")
     return "\n".join(lines) + "\n"
 
 

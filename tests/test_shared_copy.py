@@ -143,6 +143,14 @@ def test_retention_removes_pruned_versions_from_the_shared_copy_never_the_live_o
     assert versions.live_version(ws) in on_shared
     assert _tree(tmp_path / "shared") == _local_tree(ws)
 
+    # A rollback moves the shared pointer too.
+    from typer.testing import CliRunner
+    from flows.cli import app
+    older = next(v for v in local if v != versions.live_version(ws))
+    res = CliRunner().invoke(app, ["rollback", "--to", older, "--workspace", str(ws.root), "--shared", uri])
+    assert res.exit_code == 0, res.output
+    assert sc.read_live_predictions(uri)[0] == versions.live_version(ws) == older
+
 
 def test_a_night_killed_before_the_pointer_leaves_the_old_live_version_whole(prefect_harness, first_night, tmp_path):
     uri = _copy_base(first_night, tmp_path)
