@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import os
 import sys
+from contextlib import contextmanager
 from pathlib import Path
 from typing import Optional
 
@@ -579,6 +580,27 @@ def _share_after(cfg, done: str) -> None:
         raise typer.Exit(1)
 
 
+@contextmanager
+def _shared_copy_command(cfg, what: str):
+    """Yield ``(workspace, shared copy)`` for ``share``/``restore``; map their errors to exit codes
+    (2: the setting is wrong or the copy belongs to another workspace; 1: I/O failed or the lock is held)."""
+    if not cfg.paths.shared:
+        err.print("no shared copy configured: set paths.shared in the config, TAREWISE_SHARED, or --shared")
+        raise typer.Exit(2)
+    from tasks.lock import LockHeld
+    from tasks.shared_copy import SharedCopy, SharedCopyError, SharedCopyRefused
+    from tasks.workspace import Workspace
+    ws = Workspace.at(cfg.paths.workspace)
+    try:
+        yield ws, SharedCopy.at(cfg.paths.shared, ws)
+    except SharedCopyRefused as exc:
+        err.print(f"[bold red]{what} refused[/]: {exc}", highlight=False)
+        raise typer.Exit(2)
+    except (SharedCopyError, LockHeld) as exc:
+        err.print(f"[bold red]{what} failed[/]: {exc}", highlight=False)
+        raise typer.Exit(1)
+
+
 @app.command()
 def share(dry_run: bool = typer.Option(False, "--dry-run", help="List what would be copied and removed; change "
                                        "nothing."),
@@ -590,15 +612,9 @@ def share(dry_run: bool = typer.Option(False, "--dry-run", help="List what would
     """Bring the shared copy (paths.shared) up to date now: new partitions and versions, then the live
     pointer, then removals. Nights do this themselves; use it to catch up after a failed copy."""
     cfg = load(config, None, workspace, shared)
-    if not cfg.paths.shared:
-        err.print("no shared copy configured: set paths.shared in the config, TAREWISE_SHARED, or --shared")
-        raise typer.Exit(2)
-    from tasks.lock import LockHeld, workspace_lock
-    from tasks.shared_copy import SharedCopy, SharedCopyError, SharedCopyRefused, plan_push, push
-    from tasks.workspace import Workspace
-    ws = Workspace.at(cfg.paths.workspace)
-    try:
-        target = SharedCopy.at(cfg.paths.shared, ws)
+    from tasks.lock import workspace_lock
+    from tasks.shared_copy import plan_push, push
+    with _shared_copy_command(cfg, "share") as (ws, target):
         if dry_run:
             plan = plan_push(ws, target)
             for rel in plan.uploads:
@@ -606,17 +622,10 @@ def share(dry_run: bool = typer.Option(False, "--dry-run", help="List what would
             for rel in plan.clears + plan.deletes:
                 console.print(f"remove {rel}", highlight=False)
             console.print(f"{len(plan.uploads)} file(s) to copy ({plan.bytes / 1e6:.1f} MB), "
-                          f"{len(plan.clears) + len(plan.deletes)} "
-                          f"to remove on {target.uri}", highlight=False)
+                          f"{len(plan.clears) + len(plan.deletes)} to remove on {target.uri}", highlight=False)
             return
         with workspace_lock(ws.lock, "copy to the shared copy", cfg.runtime.lock_stale_seconds):
             console.print(push(ws, target, take_over=take_over).summary(), highlight=False)
-    except SharedCopyRefused as exc:
-        err.print(f"[bold red]share refused[/]: {exc}", highlight=False)
-        raise typer.Exit(2)
-    except (SharedCopyError, LockHeld) as exc:
-        err.print(f"[bold red]share failed[/]: {exc}", highlight=False)
-        raise typer.Exit(1)
 
 
 @app.command()
@@ -626,23 +635,11 @@ def restore(config: Optional[Path] = ConfigOpt, workspace: Optional[str] = Works
     and the live pointer if it has none. Nothing local is overwritten. (A night on a workspace that
     has never run does this by itself.)"""
     cfg = load(config, None, workspace, shared)
-    if not cfg.paths.shared:
-        err.print("no shared copy configured: set paths.shared in the config, TAREWISE_SHARED, or --shared")
-        raise typer.Exit(2)
-    from tasks.lock import LockHeld, workspace_lock
-    from tasks.shared_copy import SharedCopy, SharedCopyError, SharedCopyRefused, restore as do_restore
-    from tasks.workspace import Workspace
-    ws = Workspace.at(cfg.paths.workspace)
-    try:
-        target = SharedCopy.at(cfg.paths.shared, ws)
+    from tasks.lock import workspace_lock
+    from tasks.shared_copy import restore as do_restore
+    with _shared_copy_command(cfg, "restore") as (ws, target):
         with workspace_lock(ws.lock, "restore from the shared copy", cfg.runtime.lock_stale_seconds):
             console.print(do_restore(ws, target).summary(), highlight=False)
-    except SharedCopyRefused as exc:
-        err.print(f"[bold red]config error[/]: {exc}", highlight=False)
-        raise typer.Exit(2)
-    except (SharedCopyError, LockHeld) as exc:
-        err.print(f"[bold red]restore failed[/]: {exc}", highlight=False)
-        raise typer.Exit(1)
 
 
 @app.command()

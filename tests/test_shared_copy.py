@@ -250,3 +250,17 @@ def test_a_backfill_on_a_new_machine_resumes_where_the_shared_copy_ends(first_ni
     ws = Workspace.at(tmp_path / "ws-new")
     assert sc.read_live_predictions(uri)[0] == out["live_version"] == versions.live_version(ws)
     assert _tree(tmp_path / "shared") == _local_tree(ws)
+
+
+def test_restore_and_share_commands(first_night, tmp_path):
+    from typer.testing import CliRunner
+    from flows.cli import app
+
+    uri = _copy_base(first_night, tmp_path)
+    fresh = tmp_path / "ws-fresh"
+    res = CliRunner().invoke(app, ["restore", "--workspace", str(fresh), "--shared", uri])
+    assert res.exit_code == 0, res.output
+    assert "restored" in res.output
+    assert versions.live_version(Workspace.at(fresh)) == sc.read_live_predictions(uri)[0]
+    res = CliRunner().invoke(app, ["share", "--dry-run", "--workspace", str(fresh), "--shared", uri])
+    assert res.exit_code == 0 and "0 file(s) to copy" in res.output, res.output
