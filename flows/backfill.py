@@ -52,7 +52,8 @@ def backfill(cfg: Config, start: str, end: str, live: Literal["last", "each"] = 
         run_night = nightly_for(cfg, dask_address=cluster)
         if held["took_over"]:
             log.warning("took over a stale workspace lock left by %s", held["took_over"].get("what"))
-        steps.restore_shared(cfg)
+        if cfg.paths.shared:   # a workspace that has never run starts from the shared copy
+            steps.restore_shared(cfg)
         for run_id in ledger.mark_interrupted(ws):
             log.warning("run %s in the ledger never finished (its process died); marked interrupted", run_id)
         plan = plan_backfill(ws, cfg, start, end, force)

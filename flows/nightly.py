@@ -53,7 +53,8 @@ def nightly(cfg: Config, run_date: str | None = None, kind: str = "nightly", mak
     run_date = run_date or yesterday(cfg.runtime.timezone)
     if take_lock:
         with workspace_lock(ws.lock, f"{kind} run for {run_date}", cfg.runtime.lock_stale_seconds):
-            _io(steps.restore_shared, cfg)(cfg)
+            if cfg.paths.shared:   # a workspace that has never run starts from the shared copy
+                _io(steps.restore_shared, cfg)(cfg)
             # Holding the lock, no other run of this workspace is alive: "running" rows are dead runs.
             for run_id in ledger.mark_interrupted(ws):
                 get_run_logger().warning("run %s never finished (killed or crashed); marked interrupted", run_id)

@@ -47,11 +47,10 @@ class PathsConfig(_Section):
             if scheme not in SHARED_SCHEMES:
                 raise ValueError(f"paths.shared = {self.shared!r}: unknown scheme {scheme!r}; use one of "
                                  f"{', '.join(SHARED_SCHEMES)} or a folder path")
-        local = self.shared.removeprefix("file://") if "://" not in self.shared.removeprefix("file://") else None
-        if self.shared and local is not None and "://" not in self.workspace:
-            here = Path(local).expanduser().resolve()
-            ws = Path(self.workspace.removeprefix("file://")).expanduser().resolve()
-            if here == ws or ws in here.parents or here in ws.parents:
+        shared, workspace = self.shared.removeprefix("file://"), self.workspace.removeprefix("file://")
+        if shared and "://" not in shared and "://" not in workspace:
+            from .workspace import overlaps
+            if overlaps(shared, workspace):
                 raise ValueError(f"paths.shared = {self.shared!r} overlaps paths.workspace = {self.workspace!r}; "
                                  "the shared copy must be a folder outside the workspace")
         return self

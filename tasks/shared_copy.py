@@ -44,8 +44,8 @@ import pyarrow as pa
 import pyarrow.fs as pafs
 import pyarrow.parquet as pq
 
-from . import failpoints
-from .workspace import Workspace, atomic_write_bytes
+from . import failpoints, versions
+from .workspace import Workspace, atomic_write_bytes, overlaps
 
 JOURNAL = "shared-copy.json"
 POINTER = "live.json"
@@ -93,11 +93,9 @@ class SharedCopy:
         except OSError as exc:
             raise SharedCopyError(f"paths.shared = {uri!r}: {exc}") from None
         root = root.rstrip("/")
-        if fs.type_name == "local" and workspace is not None:
-            here, ws_root = Path(root).resolve(), workspace.root.resolve()
-            if here == ws_root or ws_root in here.parents or here in ws_root.parents:
-                raise SharedCopyRefused(f"paths.shared = {uri!r} overlaps the workspace {ws_root}; "
-                                      "choose a folder outside it")
+        if fs.type_name == "local" and workspace is not None and overlaps(root, workspace.root):
+            raise SharedCopyRefused(f"paths.shared = {uri!r} overlaps the workspace {workspace.root}; "
+                                    "choose a folder outside it")
         return cls(uri, fs, root)
 
     def path(self, rel: str) -> str:
@@ -275,26 +273,28 @@ class PushPlan:
         return not self.uploads and not self.deletes and not self.clears
 
 
-def plan_push(ws: Workspace, shared: SharedCopy, remote: dict[str, int] | None = None) -> PushPlan:
-    """What :func:`push` would copy and delete, without changing anything. ``remote``: a listing of
-    the shared copy already made (:meth:`SharedCopy.listing`)."""
-    journal = Journal.read(ws, shared.uri)
-    local = local_files(ws)
-    remote = shared.listing() if remote is None else remote
+def plan_push(ws: Workspace, shared: SharedCopy) -> PushPlan:
+    """What :func:`push` would copy and delete, without changing anything."""
+    return _plan(ws, Journal.read(ws, shared.uri), local_files(ws), shared.listing())
+
+
+def _manifest_first(rels) -> list[str]:
+    # A version stops being listed the moment its manifest goes, so that goes first.
+    return sorted(rels, key=lambda rel: (not rel.endswith("/manifest.json"), rel))
+
+
+def _plan(ws: Workspace, journal: Journal, local: dict[str, os.stat_result], remote: dict[str, int]) -> PushPlan:
     uploads = sorted((rel for rel, st in local.items()
                       if remote.get(rel) != st.st_size or journal.files.get(rel) != [st.st_size, st.st_mtime_ns]),
                      key=_rank)
-    live = _local_live(ws)
-    deletes = [rel for rel in journal.files
-               if rel not in local and rel in remote and (_version_of(rel) is None or _version_of(rel) != live)]
-    # A version stops being listed the moment its manifest goes, so that goes first.
-    deletes.sort(key=lambda rel: (not rel.endswith("/manifest.json"), rel))
+    live = versions.live_version(ws)
+    deletes = _manifest_first(rel for rel in journal.files if rel not in local and rel in remote
+                              and not (live and _version_of(rel) == live))
     # Files on the shared copy inside a version this workspace also has, but which the local version
     # lacks: left by another writer's version of the same id (only after a take-over). Removed first,
     # so the version there becomes exactly the local one.
     mine = {_version_of(rel) for rel in local} - {None}
-    clears = sorted((rel for rel in remote if _version_of(rel) in mine and rel not in local and _belongs(rel)),
-                    key=lambda rel: (not rel.endswith("/manifest.json"), rel))
+    clears = _manifest_first(rel for rel in remote if _version_of(rel) in mine and rel not in local and _belongs(rel))
     return PushPlan(uploads, deletes, sum(local[r].st_size for r in uploads), clears)
 
 
@@ -303,13 +303,6 @@ def pending_files(ws: Workspace, uri: str) -> int:
     request to the shared copy, so ``tarewise status`` stays quick)."""
     journal = Journal.read(ws, uri)
     return sum(journal.files.get(rel) != [st.st_size, st.st_mtime_ns] for rel, st in local_files(ws).items())
-
-
-def _local_live(ws: Workspace) -> str | None:
-    try:
-        return json.loads(ws.live_pointer.read_text()).get("version_id")
-    except (FileNotFoundError, ValueError):
-        return None
 
 
 @dataclass(frozen=True)
@@ -358,8 +351,8 @@ def push(ws: Workspace, shared: SharedCopy, take_over: bool = False) -> PushResu
     remote = shared.listing()
     if not take_over:
         check_single_writer(ws, shared, remote, journal)
-    plan = plan_push(ws, shared, remote)
     stats = local_files(ws)
+    plan = _plan(ws, journal, stats, remote)
     for rel in plan.clears:
         shared.delete(rel)
     for k, rel in enumerate(plan.uploads):
@@ -382,7 +375,7 @@ def push(ws: Workspace, shared: SharedCopy, take_over: bool = False) -> PushResu
         journal.files.pop(rel)
     journal.write(ws)
     return PushResult(shared.uri, len(plan.uploads), plan.bytes, len(plan.deletes) + len(plan.clears),
-                      _local_live(ws))
+                      versions.live_version(ws))
 
 
 @dataclass(frozen=True)
@@ -445,7 +438,7 @@ def restore(ws: Workspace, shared: SharedCopy) -> RestoreResult:
         journal.files[rel] = [st.st_size, st.st_mtime_ns]
     if copied:
         journal.write(ws)
-    return RestoreResult(shared.uri, len(copied), sorted(by_version), live or _local_live(ws))
+    return RestoreResult(shared.uri, len(copied), sorted(by_version), live or versions.live_version(ws))
 
 
 def _belongs(rel: str) -> bool:

@@ -129,9 +129,9 @@ def publish_version(cfg: Config, version_id: str, candidate: Checkpoint, shadow:
 
 @task(name="restore-from-shared-copy", **IO)
 def restore_shared(cfg: Config) -> shared_copy.RestoreResult | None:
-    """A workspace that has never run starts from the shared copy (``paths.shared``), if one is set."""
+    """A workspace that has never run starts from the shared copy (``paths.shared``); else nothing."""
     ws = Workspace.at(cfg.paths.workspace)
-    if not cfg.paths.shared or not shared_copy.is_new(ws):
+    if not shared_copy.is_new(ws):
         return None
     result = shared_copy.restore(ws, shared_copy.SharedCopy.at(cfg.paths.shared, ws))
     get_run_logger().info(result.summary())
@@ -139,10 +139,8 @@ def restore_shared(cfg: Config) -> shared_copy.RestoreResult | None:
 
 
 @task(name="push-to-shared-copy", **IO)
-def push_shared(cfg: Config) -> shared_copy.PushResult | None:
-    """Bring the shared copy up to date with the workspace (live pointer last), if one is set."""
-    if not cfg.paths.shared:
-        return None
+def push_shared(cfg: Config) -> shared_copy.PushResult:
+    """Bring the shared copy (``paths.shared``) up to date with the workspace (live pointer last)."""
     ws = Workspace.at(cfg.paths.workspace)
     result = shared_copy.push(ws, shared_copy.SharedCopy.at(cfg.paths.shared, ws))
     get_run_logger().info(result.summary())

@@ -37,6 +37,12 @@ def resolve(uri_or_path: str) -> tuple[pafs.FileSystem, str]:
     return pafs.LocalFileSystem(), str(Path(uri_or_path).expanduser().resolve())
 
 
+def overlaps(a: str | os.PathLike, b: str | os.PathLike) -> bool:
+    """Is one of two local folders the other, or inside it? (Resolved, so relative paths and links count.)"""
+    x, y = Path(a).expanduser().resolve(), Path(b).expanduser().resolve()
+    return x == y or x in y.parents or y in x.parents
+
+
 def atomic_write_bytes(path: Path, data: bytes) -> None:
     """Write ``data`` to ``path`` so readers see either the old or the new file, never a torn one."""
     path.parent.mkdir(parents=True, exist_ok=True)
