@@ -54,7 +54,6 @@ FOLDERS = ("store", "quarantine", "versions", "reports")
 #: Single files of the workspace that are copied.
 FILES = ("ledger/runs.parquet", "metrics/nightly.parquet", "alerts/history.jsonl", POINTER)
 _CHUNK = 8 << 20    # bytes per read/write when streaming a file
-_FLAT = ("s3", "gcs", "abfs")   # object stores: "folders" are key prefixes and vanish with their last object
 
 
 class SharedCopyError(OSError):
@@ -162,15 +161,14 @@ class SharedCopy:
             raise SharedCopyError(f"paths.shared = {self.uri!r}: could not read {rel}: {exc}") from exc
 
     def delete(self, rel: str) -> None:
-        """Delete ``rel``; on filesystems with real folders, also the folders it leaves empty."""
+        """Delete ``rel`` and the folders it leaves empty (real folders, or the empty "folder" marker
+        objects pyarrow's S3 filesystem writes when a prefix loses its last object)."""
         try:
             self.fs.delete_file(self.path(rel))
         except FileNotFoundError:
             pass
         except (OSError, pa.ArrowException) as exc:
             raise SharedCopyError(f"paths.shared = {self.uri!r}: could not delete {rel}: {exc}") from exc
-        if self.fs.type_name in _FLAT:
-            return
         parts = rel.split("/")[:-1]
         while parts:
             folder = self.path("/".join(parts))

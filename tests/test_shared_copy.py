@@ -264,3 +264,51 @@ def test_restore_and_share_commands(first_night, tmp_path):
     assert versions.live_version(Workspace.at(fresh)) == sc.read_live_predictions(uri)[0]
     res = CliRunner().invoke(app, ["share", "--dry-run", "--workspace", str(fresh), "--shared", uri])
     assert res.exit_code == 0 and "0 file(s) to copy" in res.output, res.output
+
+
+@pytest.fixture
+def s3_endpoint(monkeypatch):
+    """An S3-compatible HTTP server on 127.0.0.1 (``moto.server.ThreadedMotoServer``, the moto package)
+    with one empty bucket; yields ``host:port``. pyarrow's S3FileSystem talks real HTTP to it."""
+    from moto.server import ThreadedMotoServer
+
+    for key, value in {"AWS_ACCESS_KEY_ID": "tarewise-test", "AWS_SECRET_ACCESS_KEY": "tarewise-test",
+                       "AWS_DEFAULT_REGION": "us-east-1"}.items():
+        monkeypatch.setenv(key, value)
+    server = ThreadedMotoServer(ip_address="127.0.0.1", port=0, verbose=False)
+    server.start()
+    host, port = server.get_host_and_port()
+    pafs.S3FileSystem(endpoint_override=f"{host}:{port}", scheme="http", region="us-east-1",
+                      allow_bucket_creation=True).create_dir("reading-app-models")
+    try:
+        yield f"{host}:{port}"
+    finally:
+        server.stop()
+
+
+def _s3_tree(target: sc.SharedCopy) -> dict[str, bytes]:
+    return {rel: target.read_bytes(rel) for rel in target.listing()}
+
+
+def test_nights_over_the_s3_protocol(prefect_harness, first_night, tmp_path, s3_endpoint):
+    import shutil
+    uri = f"s3://reading-app-models/tarewise?endpoint_override={s3_endpoint}&scheme=http&region=us-east-1"
+    shutil.copytree(first_night / "ws-a", tmp_path / "ws-a")
+    (tmp_path / "ws-a" / sc.JOURNAL).unlink()          # this workspace has not copied anything to S3 yet
+    cfg = _cfg(tmp_path, "ws-a", uri, **{"retention.keep_versions": 1})
+    for day in NIGHTS[1:]:
+        out = _night(cfg, day)
+        assert out["status"] == "done" and out["shared"]["files"] > 0
+    ws = Workspace.at(tmp_path / "ws-a")
+    target = sc.SharedCopy.at(uri, ws)
+    assert target.fs.type_name == "s3"
+    # The bucket holds exactly the workspace's files, byte for byte; the pruned night-1 version is gone.
+    assert _s3_tree(target) == _local_tree(ws)
+    assert not any(rel.startswith("versions/v20261101-") for rel in target.listing())
+    live, table = sc.read_live_predictions(uri)
+    assert live == versions.live_version(ws)
+    assert table.equals(pq.read_table(ws.versions / live / "predictions.parquet"))
+    # A new machine restores from the bucket alone.
+    fresh = Workspace.at(tmp_path / "ws-new")
+    assert sc.restore(fresh, target).live == live
+    assert _local_tree(fresh) == _local_tree(ws)
