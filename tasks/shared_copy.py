@@ -217,8 +217,13 @@ def _rank(rel: str) -> tuple[int, str]:
     if rel.startswith(("store/", "quarantine/")):
         return 0, rel
     if rel.startswith("versions/"):
-        return (2 if rel.endswith("/manifest.json") and rel.count("/") == 2 else 1), rel
+        return (2 if _is_manifest(rel) else 1), rel
     return 3, rel
+
+
+def _is_manifest(rel: str) -> bool:
+    """``versions/<id>/manifest.json``: the file whose presence makes a version exist."""
+    return rel.endswith("/manifest.json") and rel.count("/") == 2
 
 
 def _version_of(rel: str) -> str | None:
@@ -278,7 +283,7 @@ def plan_push(ws: Workspace, shared: SharedCopy) -> PushPlan:
 
 def _manifest_first(rels) -> list[str]:
     # A version stops being listed the moment its manifest goes, so that goes first.
-    return sorted(rels, key=lambda rel: (not rel.endswith("/manifest.json"), rel))
+    return sorted(rels, key=lambda rel: (not _is_manifest(rel), rel))
 
 
 def _plan(ws: Workspace, journal: Journal, local: dict[str, os.stat_result], remote: dict[str, int]) -> PushPlan:
@@ -401,7 +406,7 @@ def restore(ws: Workspace, shared: SharedCopy) -> RestoreResult:
     """
     remote = shared.listing()
     journal = Journal.read(ws, shared.uri)
-    whole = {_version_of(r) for r in remote if r.endswith("/manifest.json") and r.count("/") == 2}
+    whole = {_version_of(r) for r in remote if _is_manifest(r)}
     wanted = [r for r in remote if _belongs(r) and r != POINTER and not (ws.root / r).exists()]
     by_version: dict[str, list[str]] = {}
     plain = []
@@ -424,12 +429,12 @@ def restore(ws: Workspace, shared: SharedCopy) -> RestoreResult:
         copied.extend(rels)
     live = None
     if POINTER in remote and not ws.live_pointer.exists():
-        pointer = json.loads(shared.read_bytes(POINTER))
-        vid = pointer.get("version_id")
+        pointer = shared.read_bytes(POINTER)     # one read: the bytes checked are the bytes written
+        vid = json.loads(pointer).get("version_id")
         if vid and (ws.versions / vid / "manifest.json").exists():
-            shared.get(POINTER, ws.live_pointer)
+            atomic_write_bytes(ws.live_pointer, pointer)
             copied.append(POINTER)
-            journal.pointer = _sha256(ws.live_pointer.read_bytes())
+            journal.pointer = _sha256(pointer)
             live = vid
     for rel in copied:
         st = (ws.root / rel).stat()
