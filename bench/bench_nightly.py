@@ -144,8 +144,9 @@ def run_case(size: str, logs: Path, work: Path, method: str, seed_epochs: int, r
     import torch
 
     from flows.nightly import nightly_for
-    from tasks import ingest, store
     from tasks.config import Config
+    from tasks.ingest import logs as ingest
+    from tasks.ingest import store
     from tasks.ledger import read_ledger
     from tasks.workspace import Workspace
 

@@ -1,6 +1,6 @@
 """Large invented rating logs for the nightly benchmark: 1M, 10M or 30M organic ratings over 30 days.
 
-Same invented scenario and generator as the demo (:func:`tasks.demo_data.generate`: the library network's
+Same invented scenario and generator as the demo (:func:`tasks.operate.demo_data.generate`: the library network's
 reading app, lover / hater / random members, Zipf-like title popularity, log-normal member activity,
 about 3% of each day's active members answer one probe card). Only the sizes differ; every number is
 invented. Memory is O(members + titles + one day of ratings), so 30M ratings need no more RAM than 1M
@@ -24,7 +24,7 @@ ROOT = Path(__file__).resolve().parents[1]
 if str(ROOT) not in sys.path:
     sys.path.insert(0, str(ROOT))
 
-from tasks.demo_data import TRUTH_DIR, generate  # noqa: E402
+from tasks.operate.demo_data import TRUTH_DIR, generate  # noqa: E402
 
 #: name -> (organic ratings over the window, members, titles). Invented sizes within the issue's range
 #: (up to 500k users and 100k items).

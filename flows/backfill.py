@@ -3,7 +3,7 @@
 One parent flow runs every date as a child ``nightly`` flow (Prefect's local mode costs seconds per
 process, so never one process per date). The parent holds the workspace lock for the whole range and
 the children run with ``take_lock=False``. What runs, what is skipped, which version each night starts
-from and which night may go live is decided from the run ledger (``tasks/backfill_plan.py``), so a
+from and which night may go live is decided from the run ledger (``tasks/operate/backfill_plan.py``), so a
 resumed backfill makes the same choices as an uninterrupted one.
 """
 
@@ -14,13 +14,15 @@ from typing import Literal
 
 from prefect import flow, get_run_logger
 
+from flows import runners
 from flows.nightly import nightly_for, push_to_shared
-from tasks import failpoints, ledger, runners, steps, sweep as sweeps
-from tasks.backfill_plan import chain_head, date_range, make_live_for, plan_backfill
+from tasks import failpoints, ledger, steps
 from tasks.config import Config
 from tasks.lock import workspace_lock
-from tasks.retention import apply_retention_logged, default_as_of
-from tasks.versions import live_version
+from tasks.operate import sweep as sweeps
+from tasks.operate.backfill_plan import chain_head, date_range, make_live_for, plan_backfill
+from tasks.operate.retention import apply_retention_logged, default_as_of
+from tasks.publish.versions import live_version
 from tasks.workspace import Workspace
 
 
@@ -38,7 +40,7 @@ def _night_row(out: dict, seconds: float) -> dict:
 @flow(name="tarewise-backfill")
 def backfill(cfg: Config, start: str, end: str, live: Literal["last", "each"] = "last",
              force: bool = False) -> dict:
-    """Replay ``start..end`` (inclusive) night by night; see ``tasks/backfill_plan.py`` for the rules.
+    """Replay ``start..end`` (inclusive) night by night; see ``tasks/operate/backfill_plan.py`` for the rules.
 
     Returns ``{"start", "end", "live_mode", "nights": [per run night], "skipped": [plan rows],
     "live_version", "retention"}``. Raises :class:`BackfillStopped` naming the date and cause when a
@@ -53,7 +55,7 @@ def backfill(cfg: Config, start: str, end: str, live: Literal["last", "each"] = 
         if held["took_over"]:
             log.warning("took over a stale workspace lock left by %s", held["took_over"].get("what"))
         if cfg.paths.shared:   # a workspace that has never run starts from the shared copy
-            steps.restore_shared(cfg)
+            steps.with_io_retries(steps.restore_shared, cfg)(cfg)
         for run_id in ledger.mark_interrupted(ws):
             log.warning("run %s in the ledger never finished (its process died); marked interrupted", run_id)
         plan = plan_backfill(ws, cfg, start, end, force)
@@ -88,7 +90,7 @@ def backfill(cfg: Config, start: str, end: str, live: Literal["last", "each"] = 
 @flow(name="tarewise-sweep")
 def sweep(cfg: Config, start: str, end: str, grid: list[dict]) -> dict:
     """Replay ``start..end`` once per setting in ``grid`` (dotted-key overrides), each in its own scratch
-    workspace (``tasks/sweep.py``); a failing setting is recorded and the others still run.
+    workspace (``tasks/operate/sweep.py``); a failing setting is recorded and the others still run.
 
     Returns ``{"start", "end", "root", "rows": sweeps.summarise(...), "results": path}``.
     """

@@ -137,7 +137,7 @@ def score(pairs: Path = typer.Option(..., "--pairs", help="Parquet with user_id,
           config: Optional[Path] = ConfigOpt, workspace: Optional[str] = WorkspaceOpt) -> None:
     """Score arbitrary (user_id, item_id) pairs; unknown ids get a fallback score and a flag."""
     cfg = load(config, None, workspace)
-    from tasks.scoring_io import score_pairs
+    from tasks.publish.scoring_io import score_pairs
     try:
         n, used, fallbacks = score_pairs(cfg, pairs, out, version)
     except Exception as exc:  # noqa: BLE001
@@ -149,7 +149,7 @@ def score(pairs: Path = typer.Option(..., "--pairs", help="Parquet with user_id,
 def versions_cmd(config: Optional[Path] = ConfigOpt, workspace: Optional[str] = WorkspaceOpt) -> None:
     """List versions with state, run date, held-out MAE and gate reason."""
     cfg = load(config, None, workspace)
-    from tasks.versions import list_versions
+    from tasks.publish.versions import list_versions
     from tasks.workspace import Workspace
     t = Table(title=f"versions in {cfg.paths.workspace}")
     for col in ("version", "state", "run date", "method", "MAE cand.", "MAE shadow", "MAE live", "gate"):
@@ -173,11 +173,11 @@ def report(date: Optional[str] = typer.Option(None, "--date", "-d", help="Night 
            config: Optional[Path] = ConfigOpt, workspace: Optional[str] = WorkspaceOpt) -> None:
     """Re-render a night's HTML report and its JSON twin from stored metrics."""
     cfg = load(config, None, workspace)
-    from tasks.report import render_report
+    from tasks.monitor.report import render_report
     from tasks.workspace import Workspace
     ws = Workspace.at(cfg.paths.workspace)
     if date is None:
-        from tasks.metrics_store import read_metrics
+        from tasks.monitor.metrics_store import read_metrics
         m = read_metrics(ws)
         if m.empty:
             err.print(f"no stored metrics in {ws.metrics}; run a night first")
@@ -204,13 +204,13 @@ def demo(folder: Optional[Path] = typer.Option(None, "--dir", help="Folder for d
     base.mkdir(parents=True, exist_ok=True)
     logs = REPO / "sample_parquet"
     if fresh_data:
-        from tasks.demo_data import generate
+        from tasks.operate.demo_data import generate
         logs = base / "logs"
         generate(logs, start_date="2026-11-01", days=max(nights, 4), n_members=1500, n_titles=800,
                  organic_per_day=2500, seed=11, probe_share=0.06)
     cfg = load_config(REPO / "configs" / "demo.toml", logs=str(logs), workspace=str(base / "workspace"))
     _prefect_env(cfg.paths.workspace, verbose)
-    from tasks.ingest import list_partition_dates
+    from tasks.ingest.logs import list_partition_dates
     dates = list_partition_dates(str(logs))
     if nights:
         dates = dates[:nights]
@@ -336,7 +336,7 @@ def backfill(start: str = typer.Option(..., "--start", help="First date YYYY-MM-
              verbose: bool = typer.Option(False, "--verbose", "-v")) -> None:
     """Replay past nights date by date, carrying the model forward; resumable, skips dates already done."""
     cfg = with_runner(load(config, logs, workspace, shared), runner, dask_address)
-    from tasks.backfill_plan import LIVE_MODES, BackfillError, plan_backfill, typical_night_seconds
+    from tasks.operate.backfill_plan import LIVE_MODES, BackfillError, plan_backfill, typical_night_seconds
     from tasks.workspace import Workspace
     if live not in LIVE_MODES:
         err.print(f"--live must be one of {', '.join(LIVE_MODES)}, got {live!r}")
@@ -407,8 +407,8 @@ def _print_backfill(out: dict) -> None:
 
 
 def _sweep(cfg, ws, start: str, end: str, specs: list[str], dry_run: bool, verbose: bool) -> None:
-    from tasks import sweep as sweeps
-    from tasks.backfill_plan import BackfillError, date_range
+    from tasks.operate import sweep as sweeps
+    from tasks.operate.backfill_plan import BackfillError, date_range
     try:
         dates = date_range(start, end)
         grid = sweeps.expand_grid(cfg, sweeps.parse_specs(specs))
@@ -460,7 +460,7 @@ def status(runs: int = typer.Option(10, "--runs", help="How many ledger rows to 
            shared: Optional[str] = SharedOpt) -> None:
     """Live version, shared copy, lock, last runs from the ledger, and recent alerts."""
     cfg = load(config, None, workspace, shared)
-    from tasks.operations import status as workspace_status
+    from tasks.operate.status import status as workspace_status
     from tasks.workspace import Workspace
     s = workspace_status(Workspace.at(cfg.paths.workspace), cfg.runtime.timezone, cfg.runtime.lock_stale_seconds,
                          runs, days)
@@ -473,7 +473,7 @@ def status(runs: int = typer.Option(10, "--runs", help="How many ledger rows to 
     else:
         console.print("live: none yet")
     if cfg.paths.shared:
-        from tasks.shared_copy import SharedCopyError, pending_files
+        from tasks.operate.shared_copy import SharedCopyError, pending_files
         try:
             n = pending_files(Workspace.at(cfg.paths.workspace), cfg.paths.shared)
             console.print(f"shared copy: {cfg.paths.shared}: " + (f"{n} file(s) not copied yet (`tarewise share`)"
@@ -517,7 +517,7 @@ def rollback(to: str = typer.Option(..., "--to", help="Version id to make live a
     shared copy, if one is set, follows."""
     cfg = load(config, None, workspace, shared)
     from tasks.lock import LockHeld
-    from tasks.operations import RollbackError, rollback as do_rollback
+    from tasks.operate.rollback import RollbackError, rollback as do_rollback
     from tasks.workspace import Workspace
     try:
         out = do_rollback(Workspace.at(cfg.paths.workspace), to, reason, cfg.runtime.timezone,
@@ -542,15 +542,15 @@ def prune(as_of: Optional[str] = typer.Option(None, "--as-of", help="Reference d
     """Apply the retention settings: old versions (never live or pinned), quarantine and metrics by days;
     then the shared copy, if one is set, follows."""
     cfg = load(config, None, workspace, shared)
-    from tasks.ingest import IngestError, parse_run_date
+    from tasks.dates import DateError, parse_date
     from tasks.lock import LockHeld, workspace_lock
-    from tasks.retention import apply_retention, default_as_of
+    from tasks.operate.retention import apply_retention, default_as_of
     from tasks.workspace import Workspace
     ws = Workspace.at(cfg.paths.workspace)
     if as_of is not None:
         try:
-            parse_run_date(as_of)
-        except IngestError as exc:
+            parse_date(as_of, "--as-of")
+        except DateError as exc:
             err.print(f"--as-of: {exc}")
             raise typer.Exit(2)
     try:
@@ -568,7 +568,7 @@ def _share_after(cfg, done: str) -> None:
     if not cfg.paths.shared:
         return
     from tasks.lock import LockHeld, workspace_lock
-    from tasks.shared_copy import SharedCopy, SharedCopyError, push
+    from tasks.operate.shared_copy import SharedCopy, SharedCopyError, push
     from tasks.workspace import Workspace
     ws = Workspace.at(cfg.paths.workspace)
     try:
@@ -588,7 +588,7 @@ def _shared_copy_command(cfg, what: str):
         err.print("no shared copy configured: set paths.shared in the config, TAREWISE_SHARED, or --shared")
         raise typer.Exit(2)
     from tasks.lock import LockHeld
-    from tasks.shared_copy import SharedCopy, SharedCopyError, SharedCopyRefused
+    from tasks.operate.shared_copy import SharedCopy, SharedCopyError, SharedCopyRefused
     from tasks.workspace import Workspace
     ws = Workspace.at(cfg.paths.workspace)
     try:
@@ -613,7 +613,7 @@ def share(dry_run: bool = typer.Option(False, "--dry-run", help="List what would
     pointer, then removals. Nights do this themselves; use it to catch up after a failed copy."""
     cfg = load(config, None, workspace, shared)
     from tasks.lock import workspace_lock
-    from tasks.shared_copy import plan_push, push
+    from tasks.operate.shared_copy import plan_push, push
     with _shared_copy_command(cfg, "share") as (ws, target):
         if dry_run:
             plan = plan_push(ws, target)
@@ -636,7 +636,7 @@ def restore(config: Optional[Path] = ConfigOpt, workspace: Optional[str] = Works
     has never run does this by itself.)"""
     cfg = load(config, None, workspace, shared)
     from tasks.lock import workspace_lock
-    from tasks.shared_copy import restore as do_restore
+    from tasks.operate.shared_copy import restore as do_restore
     with _shared_copy_command(cfg, "restore") as (ws, target):
         with workspace_lock(ws.lock, "restore from the shared copy", cfg.runtime.lock_stale_seconds):
             console.print(do_restore(ws, target).summary(), highlight=False)

@@ -17,7 +17,7 @@ holder died is taken over. Each night has the flow timeout ``runtime.flow_timeou
 
 from __future__ import annotations
 
-from datetime import datetime, timedelta
+from datetime import datetime
 from pathlib import Path
 from typing import Literal
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
@@ -30,6 +30,7 @@ from prefect.schedules import Cron
 from flows.backfill import backfill
 from flows.nightly import nightly_for
 from tasks.config import Config, ConfigError, parse_config
+from tasks.dates import night_before
 
 NIGHTLY_DEPLOYMENT = "nightly"
 BACKFILL_DEPLOYMENT = "backfill"
@@ -39,7 +40,7 @@ TAGS = ["tarewise"]
 
 def night_for(scheduled: datetime, timezone: str) -> str:
     """The night a run scheduled at ``scheduled`` processes: the day before, in ``timezone``."""
-    return (scheduled.astimezone(ZoneInfo(timezone)).date() - timedelta(days=1)).isoformat()
+    return night_before(scheduled, timezone)
 
 
 def _settings(settings: dict) -> Config:

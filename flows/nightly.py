@@ -3,31 +3,23 @@
 from __future__ import annotations
 
 import time
-from datetime import datetime, timedelta
-from zoneinfo import ZoneInfo
 
 from prefect import flow, get_run_logger
 from prefect.artifacts import create_markdown_artifact, create_table_artifact
 
-from tasks import ledger, runners, steps, versions
+from flows import runners
+from tasks import ledger, steps
 from tasks.config import Config
-from tasks.gate import decide
+from tasks.dates import yesterday
+from tasks.evaluate.gate import decide
 from tasks.lock import workspace_lock
-from tasks.manifest import build_manifest
-from tasks.night_report import report_night
-from tasks.retention import apply_retention_logged
-from tasks.shared_copy import SharedCopyError
-from tasks.skew_metrics import user_skew_segments
+from tasks.monitor.night_report import report_night
+from tasks.monitor.skew_metrics import user_skew_segments
+from tasks.operate.retention import apply_retention_logged
+from tasks.operate.shared_copy import SharedCopyError
+from tasks.publish import versions
+from tasks.publish.manifest import build_manifest
 from tasks.workspace import Workspace
-
-
-def yesterday(timezone: str) -> str:
-    return (datetime.now(ZoneInfo(timezone)).date() - timedelta(days=1)).isoformat()
-
-
-def _io(step, cfg: Config):
-    """The I/O task with the configured retry count (backoff delays stay as declared on the task)."""
-    return step.with_options(retries=cfg.runtime.io_retries)
 
 
 class _Clock:
@@ -54,7 +46,7 @@ def nightly(cfg: Config, run_date: str | None = None, kind: str = "nightly", mak
     if take_lock:
         with workspace_lock(ws.lock, f"{kind} run for {run_date}", cfg.runtime.lock_stale_seconds):
             if cfg.paths.shared:   # a workspace that has never run starts from the shared copy
-                _io(steps.restore_shared, cfg)(cfg)
+                steps.with_io_retries(steps.restore_shared, cfg)(cfg)
             # Holding the lock, no other run of this workspace is alive: "running" rows are dead runs.
             for run_id in ledger.mark_interrupted(ws):
                 get_run_logger().warning("run %s never finished (killed or crashed); marked interrupted", run_id)
@@ -86,7 +78,7 @@ def push_to_shared(cfg: Config, done: str) -> dict:
     what is done and how it catches up."""
     t0 = time.perf_counter()
     try:
-        result = _io(steps.push_shared, cfg)(cfg)
+        result = steps.with_io_retries(steps.push_shared, cfg)(cfg)
         return {"files": result.uploaded, "bytes": result.bytes, "removed": result.deleted,
                 "seconds": round(time.perf_counter() - t0, 3)}
     except Exception as exc:  # noqa: BLE001 - re-raised with what is done and what is not
@@ -103,15 +95,15 @@ def _work(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool,
     clock = _Clock()
     counts: dict = {}
     try:
-        listing = _io(steps.list_partition, cfg)(cfg, run_date)
+        listing = steps.with_io_retries(steps.list_partition, cfg)(cfg, run_date)
         # Files of a partition are independent: read and row-checked side by side on the task runner.
-        reads = [_io(steps.read_log_file, cfg).submit(cfg, run_date, path) for path in listing.paths]
+        reads = [steps.with_io_retries(steps.read_log_file, cfg).submit(cfg, run_date, path) for path in listing.paths]
         result = steps.validate_partition(cfg, listing, [f.result() for f in reads])
         counts = {"rows_read": result.rows_read, "rows_ingested": result.rows_valid,
                   "rows_quarantined": len(result.rejected)}
-        _io(steps.quarantine_and_store, cfg)(cfg, run_date, result)
+        steps.with_io_retries(steps.quarantine_and_store, cfg)(cfg, run_date, result)
         clock.lap("ingest")
-        window = _io(steps.read_window, cfg)(cfg, run_date)
+        window = steps.with_io_retries(steps.read_window, cfg)(cfg, run_date)
         if len(window) < cfg.runtime.min_ratings_to_train:
             message = (f"{len(window)} ratings in the window (< runtime.min_ratings_to_train="
                        f"{cfg.runtime.min_ratings_to_train}); nothing trained or published")
@@ -120,7 +112,7 @@ def _work(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool,
                               rows_quarantined=counts["rows_quarantined"], durations=clock.durations,
                               message=message)
             return {"run_date": run_date, "status": "skipped", "version_id": None, "message": message}
-        base_id, base, base_shadow = _io(steps.load_base, cfg)(cfg, run_date, base_from)
+        base_id, base, base_shadow = steps.with_io_retries(steps.load_base, cfg)(cfg, run_date, base_from)
         clock.lap("window")
         night = steps.train(cfg, window, base, base_shadow)
         clock.lap("train")
@@ -147,7 +139,7 @@ def _work(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool,
         manifest = build_manifest(cfg, run_date, kind, base_id, result.files,
                                   sorted(window["dt"].astype(str).unique().tolist()), counts, evaluation,
                                   decision.to_dict(), cand.rounds, cand.notes, cand.checkpoint.method)
-        state = _io(steps.publish_version, cfg)(cfg, version_id, cand.checkpoint,
+        state = steps.with_io_retries(steps.publish_version, cfg)(cfg, version_id, cand.checkpoint,
                                       night.shadow.checkpoint if night.shadow else None, preds, manifest,
                                       make_live=decision.promote and make_live)
         clock.lap("publish")

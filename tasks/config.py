@@ -49,7 +49,7 @@ class PathsConfig(_Section):
                                  f"{', '.join(SHARED_SCHEMES)} or a folder path")
         shared, workspace = self.shared.removeprefix("file://"), self.workspace.removeprefix("file://")
         if shared and "://" not in shared and "://" not in workspace:
-            from .workspace import overlaps
+            from tasks.workspace import overlaps
             if overlaps(shared, workspace):
                 raise ValueError(f"paths.shared = {self.shared!r} overlaps paths.workspace = {self.workspace!r}; "
                                  "the shared copy must be a folder outside the workspace")
@@ -220,7 +220,7 @@ class RuntimeConfig(_Section):
     runner: Literal["thread", "dask"] = Field("thread", description="Prefect task runner for the parallel parts "
                                              "of a night (files of a partition, blocks of users to score): "
                                              "'thread' = a thread pool in the run's process; 'dask' = "
-                                             "prefect-dask (see tasks/runners.py).")
+                                             "prefect-dask (see flows/runners.py).")
     dask_address: str = Field("", description="Existing Dask scheduler address (e.g. tcp://host:8786); empty = "
                               "a local in-process cluster of runtime.workers workers.")
     workers: int = Field(0, ge=0, le=1024, description="Parallel tasks (threads or local Dask workers); 0 = the "

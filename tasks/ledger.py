@@ -14,8 +14,9 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from .schemas import LEDGER
-from .workspace import Workspace, atomic_write_bytes
+from tasks.schemas import LEDGER
+from tasks.files import atomic_write_bytes
+from tasks.workspace import Workspace
 
 
 def read_ledger(ws: Workspace) -> pd.DataFrame:
@@ -58,16 +59,6 @@ def finish_run(ws: Workspace, run_id: str, status: str, *, version_id: str | Non
         df[k] = df[k].astype(object)
         df.loc[hit, k] = v
     _write(ws, df)
-
-
-def completed_dates(ws: Workspace, kinds: tuple[str, ...] = ("nightly", "backfill")) -> set[str]:
-    """Dates whose latest run of these kinds finished ``done`` or ``skipped``."""
-    df = read_ledger(ws)
-    if df.empty:
-        return set()
-    df = df[df["kind"].isin(kinds)].sort_values("started_at")
-    last = df.groupby("run_date").tail(1)
-    return set(last.loc[last["status"].isin(["done", "skipped"]), "run_date"])
 
 
 def latest_by_date(ws: Workspace, kinds: tuple[str, ...] = ("nightly", "backfill")) -> pd.DataFrame:

@@ -72,8 +72,6 @@ LEDGER = pa.schema([
     pa.field("message", pa.string()),
 ])
 
-VERSION_STATES = ("candidate", "live", "held", "retired")
-
 #: Nightly drift metrics: one row per run date (re-running a date replaces its row).
 #: Units: ratings and rating differences in stars of the configured scale; divergences in bits
 #: (log base 2, so Jensen-Shannon lies in [0, 1]); shares in [0, 1]. Nested details (histograms,

@@ -12,10 +12,16 @@ import pandas as pd
 from prefect import get_run_logger, task
 from prefect.cache_policies import NO_CACHE
 
-from . import evaluation, ingest, predictions, shared_copy, store, training, versions
-from .config import Config
-from .engine.checkpoint import Checkpoint
-from .workspace import Workspace
+from tasks.config import Config
+from tasks.engine.checkpoint import Checkpoint
+from tasks.evaluate import evaluation
+from tasks.ingest import logs as ingest
+from tasks.ingest import store
+from tasks.operate import shared_copy
+from tasks.publish import predictions
+from tasks.publish import versions
+from tasks.train import training
+from tasks.workspace import Workspace
 
 
 def transient_only(task_, task_run, state) -> bool:
@@ -31,6 +37,11 @@ def transient_only(task_, task_run, state) -> bool:
 
 IO = dict(retries=2, retry_delay_seconds=[1, 5], retry_condition_fn=transient_only, cache_policy=NO_CACHE)
 COMPUTE = dict(cache_policy=NO_CACHE)
+
+
+def with_io_retries(step, cfg: Config):
+    """An I/O task with the configured retry count (``runtime.io_retries``; backoff delays as declared)."""
+    return step.with_options(retries=cfg.runtime.io_retries)
 
 
 @task(name="list-partition", **IO)

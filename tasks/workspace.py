@@ -11,16 +11,13 @@ Layout under the workspace root (all created on demand)::
     reports/YYYY-MM-DD.html|.json        nightly report and its JSON twin
     alerts/history.jsonl                 every alert ever raised, with delivery outcome
     lock                                 store lock (one run at a time)
-    shared-copy.json                     what was copied to the shared copy (tasks/shared_copy.py)
-    sweeps/<start>_<end>/s<k>/           scratch workspaces of a settings sweep (tasks/sweep.py)
-    prefect-results/                     Prefect result persistence
+    shared-copy.json                     what was copied to the shared copy (tasks/operate/shared_copy.py)
+    sweeps/<start>_<end>/s<k>/           scratch workspaces of a settings sweep (tasks/operate/sweep.py)
 """
 
 from __future__ import annotations
 
-import json
 import os
-import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -43,30 +40,11 @@ def overlaps(a: str | os.PathLike, b: str | os.PathLike) -> bool:
     return x == y or x in y.parents or y in x.parents
 
 
-def atomic_write_bytes(path: Path, data: bytes) -> None:
-    """Write ``data`` to ``path`` so readers see either the old or the new file, never a torn one."""
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent)
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
-
-
-def atomic_write_json(path: Path, obj: object) -> None:
-    atomic_write_bytes(path, (json.dumps(obj, indent=2, sort_keys=True, default=str) + "\n").encode())
-
-
 @dataclass(frozen=True)
 class Workspace:
     """Typed access to the workspace layout. State lives on a local (or mounted POSIX) filesystem:
     atomic rename is what makes publishing crash-safe. Logs may be any ``pyarrow.fs`` URI, and
-    ``paths.shared`` keeps a copy of the store and versions on one (``tasks/shared_copy.py``)."""
+    ``paths.shared`` keeps a copy of the store and versions on one (``tasks/operate/shared_copy.py``)."""
 
     root: Path
 
@@ -117,10 +95,6 @@ class Workspace:
     @property
     def lock(self) -> Path:
         return self.root / "lock"
-
-    @property
-    def results(self) -> Path:
-        return self.root / "prefect-results"
 
     def partition(self, base: Path, run_date: str) -> Path:
         return base / f"dt={run_date}"

@@ -21,9 +21,9 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import torch
 
-from .idmap import IdMap
-from .model import Factoriser, build_model
-from .recalibration import MonotoneMap
+from tasks.engine.idmap import IdMap
+from tasks.engine.model import Factoriser, build_model
+from tasks.engine.recalibration import MonotoneMap
 
 FORMAT = "tarewise-checkpoint/1"
 

@@ -42,13 +42,13 @@ import pandas as pd
 import torch
 import torch.distributed as dist
 
-from ..config import DebiasConfig, ModelConfig, ScaleConfig
-from .checkpoint import Checkpoint
-from .profiles import ProfileSampler, empirical_cdf
-from .reference import cap_reference_users, draw_reference_users, probe_errors, reference_probabilities
-from .row_adam import RowAdam
-from .splits import heldout_mask
-from .trainer import (REQUIRED, EarlyStopping, EngineInputError, FitResult, StepCalibration, _check_frame,
+from tasks.config import DebiasConfig, ModelConfig, ScaleConfig
+from tasks.engine.checkpoint import Checkpoint
+from tasks.engine.profiles import ProfileSampler, empirical_cdf
+from tasks.engine.reference import cap_reference_users, draw_reference_users, probe_errors, reference_probabilities
+from tasks.engine.row_adam import RowAdam
+from tasks.engine.splits import heldout_mask
+from tasks.engine.trainer import (REQUIRED, EarlyStopping, EngineInputError, FitResult, StepCalibration, _check_frame,
                       combined_with, finish_checkpoint, prepare_model, step_loss, training_examples)
 
 #: Methods whose training this module runs. ``snips`` needs the global weight sum of every step (one more
@@ -325,9 +325,9 @@ def fit_distributed(organic: pd.DataFrame, probe: pd.DataFrame, scale: ScaleConf
 def _load_window(args) -> pd.DataFrame:
     if args.ratings:
         return pd.read_parquet(args.ratings, columns=["user_id", "item_id", "rating", "source"])
-    from ..config import load_config
-    from ..store import read_window
-    from ..workspace import Workspace
+    from tasks.config import load_config
+    from tasks.ingest.store import read_window
+    from tasks.workspace import Workspace
     cfg = load_config(args.config, workspace=args.workspace)
     return read_window(Workspace.at(cfg.paths.workspace), args.run_date, cfg.window.days)
 
@@ -346,8 +346,8 @@ def main(argv: list[str] | None = None) -> int:
                     "per step (W times fewer steps; larger batches than single-process training)")
     args = ap.parse_args(argv)
 
-    from ..config import load_config
-    from ..schemas import ORGANIC, PROBE
+    from tasks.config import load_config
+    from tasks.schemas import ORGANIC, PROBE
     cfg = load_config(args.config, workspace=args.workspace)
     dist.init_process_group("gloo")          # env:// from torchrun (RANK, WORLD_SIZE, MASTER_ADDR/PORT)
     try:

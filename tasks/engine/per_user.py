@@ -36,9 +36,9 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from ..config import DebiasConfig, ScaleConfig
-from .recalibration import MonotoneMap
-from .skew_model import FEATURE_NAMES, fit_ridge, standardise, user_features, user_mean_prediction
+from tasks.config import DebiasConfig, ScaleConfig
+from tasks.engine.recalibration import MonotoneMap
+from tasks.engine.skew_model import FEATURE_NAMES, fit_ridge, standardise, user_features, user_mean_prediction
 
 #: Clip of the per-user slope. An upper clip of 2 cost 24 points of gap closed under strong selection on
 #: the open-data check (lovers' raw scores are compressed, their fitted slopes reach ~5), so it is wide.

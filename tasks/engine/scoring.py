@@ -9,7 +9,7 @@ from __future__ import annotations
 import numpy as np
 import torch
 
-from .checkpoint import Checkpoint
+from tasks.engine.checkpoint import Checkpoint
 
 
 def users_per_block(n_items: int, budget_bytes: float) -> int:

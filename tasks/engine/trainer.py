@@ -26,18 +26,18 @@ import numpy as np
 import pandas as pd
 import torch
 
-from ..config import DebiasConfig, ModelConfig, ScaleConfig
-from .calibration import calibration_term_per_user
-from .checkpoint import Checkpoint
-from .idmap import IdMap
-from .model import BiasedMF
-from .profiles import ProfileSampler, empirical_cdf, soft_cdf
-from .propensity import naive_bayes_propensity, rating_weights
-from .recalibration import MonotoneMap
-from .reference import cap_reference_users, draw_reference_users, probe_errors, reference_probabilities
-from .row_adam import RowAdam
-from .splits import heldout_mask
-from . import per_user
+from tasks.config import DebiasConfig, ModelConfig, ScaleConfig
+from tasks.engine import per_user
+from tasks.engine.calibration import calibration_term_per_user
+from tasks.engine.checkpoint import Checkpoint
+from tasks.engine.idmap import IdMap
+from tasks.engine.model import BiasedMF
+from tasks.engine.profiles import ProfileSampler, empirical_cdf, soft_cdf
+from tasks.engine.propensity import naive_bayes_propensity, rating_weights
+from tasks.engine.recalibration import MonotoneMap
+from tasks.engine.reference import cap_reference_users, draw_reference_users, probe_errors, reference_probabilities
+from tasks.engine.row_adam import RowAdam
+from tasks.engine.splits import heldout_mask
 
 REQUIRED = ("user_id", "item_id", "rating")
 

@@ -1,0 +1,414 @@
+"""The nightly drift report: one self-contained HTML page and its JSON twin per night.
+
+``render_report(ws, run_date, cfg)`` rebuilds a night's report from what is stored (the metrics time
+series and the alert history) and nothing else, so ``tarewise report --date D`` can redo any night.
+
+The page carries no scripts, fonts, stylesheets or images from elsewhere: CSS is inline, charts are
+matplotlib SVGs embedded as ``data:`` URIs, text uses the reader's system fonts, and every value that
+comes from data (ids, reasons, explanations) goes through jinja2's autoescape. Output is deterministic
+for the same stored inputs (no timestamps, fixed SVG id salt, no SVG metadata).
+"""
+
+from __future__ import annotations
+
+import base64
+import io
+import json
+import math
+import re
+from collections.abc import Mapping, Sequence
+from pathlib import Path
+
+import jinja2
+import matplotlib
+import numpy as np
+import pandas as pd
+from matplotlib.figure import Figure
+
+from tasks.config import Config
+from tasks.monitor.alert_delivery import night_alerts, read_history
+from tasks.monitor.alert_rules import SKEW_METRICS, WITHDRAWN, metric_band
+from tasks.monitor.metrics_store import night_row, read_metrics
+from tasks.monitor.skew_metrics import jsonable
+from tasks.files import atomic_write_bytes
+from tasks.workspace import Workspace
+
+REPORT_FORMAT = "tarewise-night-report/1"
+#: Nights shown in trend charts.
+TREND_NIGHTS = 60
+TEMPLATES = Path(__file__).parent / "templates"
+
+# Palette (our own): rust for organic ratings, deep teal for probe ratings and the candidate,
+# warm grey for the shadow model, ochre for the live version, a dark berry for alerts.
+COLOURS = {
+    "organic": "#b4532a", "probe": "#1f6b70", "candidate": "#1f6b70", "shadow": "#8b8680",
+    "live": "#c08a1e", "band": "#e9e2d3", "alert": "#8c1d40", "ink": "#2a2d31", "grid": "#dedad2",
+}
+
+MODELS = ("candidate", "shadow", "live")
+
+
+# --------------------------------------------------------------------------------------------------
+# Small value helpers
+# --------------------------------------------------------------------------------------------------
+
+def _num(x: object) -> float | None:
+    if x is None or isinstance(x, (bool, jinja2.Undefined)):
+        return None
+    try:
+        f = float(x)  # type: ignore[arg-type]
+    except (TypeError, ValueError):
+        return None
+    return f if math.isfinite(f) else None
+
+
+def fmt(x: object, digits: int = 2, signed: bool = False, unit: str = "") -> str:
+    """Number for display; an em dash when missing."""
+    f = _num(x)
+    if f is None:
+        return "\u2014"
+    s = f"{f:+.{digits}f}" if signed else f"{f:.{digits}f}"
+    return f"{s} {unit}".rstrip()
+
+
+def pct(x: object, digits: int = 1) -> str:
+    f = _num(x)
+    return "\u2014" if f is None else f"{100 * f:.{digits}f}%"
+
+
+def count(x: object) -> str:
+    f = _num(x)
+    return "\u2014" if f is None else f"{int(round(f)):,}"
+
+
+def _detail(row: Mapping) -> dict:
+    raw = row.get("detail_json")
+    if not raw or not isinstance(raw, str):
+        return {}
+    try:
+        d = json.loads(raw)
+    except json.JSONDecodeError:
+        return {}
+    return d if isinstance(d, dict) else {}
+
+
+# --------------------------------------------------------------------------------------------------
+# Charts (matplotlib object API, Agg-free SVG output; nothing global is touched)
+# --------------------------------------------------------------------------------------------------
+
+_SVG_RC = {"svg.hashsalt": "tarewise", "svg.fonttype": "path", "font.size": 9,
+           "axes.edgecolor": COLOURS["grid"], "axes.labelcolor": COLOURS["ink"],
+           "xtick.color": COLOURS["ink"], "ytick.color": COLOURS["ink"]}
+
+
+def _charting(fn):
+    """Run a chart function under our rc settings (fonts are read when artists are created)."""
+    import functools
+
+    @functools.wraps(fn)
+    def wrapper(*args, **kwargs):
+        with matplotlib.rc_context(_SVG_RC):
+            return fn(*args, **kwargs)
+    return wrapper
+
+
+def _figure(width: float = 6.4, height: float = 2.9) -> Figure:
+    fig = Figure(figsize=(width, height), dpi=100, layout="constrained")
+    return fig
+
+
+def _style(ax) -> None:
+    ax.grid(True, axis="y", color=COLOURS["grid"], linewidth=0.6)
+    ax.set_axisbelow(True)
+    for side in ("top", "right"):
+        ax.spines[side].set_visible(False)
+
+
+def _svg_data_uri(fig: Figure) -> str:
+    buf = io.BytesIO()
+    fig.savefig(buf, format="svg", metadata={"Date": None, "Creator": None, "Format": None, "Type": None})
+    svg = buf.getvalue().decode("utf-8")
+    svg = re.sub(r"<metadata>.*?</metadata>", "", svg, flags=re.S)
+    return "data:image/svg+xml;base64," + base64.b64encode(svg.encode("utf-8")).decode("ascii")
+
+
+def _short_dates(dates: Sequence[str]) -> list[str]:
+    return [d[5:] for d in dates]  # MM-DD keeps the axis readable
+
+
+@_charting
+def chart_rating_histograms(detail: Mapping) -> str | None:
+    """Organic (tonight) vs probe (window) rating shares per level."""
+    org = np.asarray(detail.get("hist_tonight_organic") or [], dtype=float)
+    probe = np.asarray(detail.get("hist_window_probe") or [], dtype=float)
+    edges = np.asarray(detail.get("rating_edges") or [], dtype=float)
+    if org.size == 0 or edges.size != org.size + 1 or (org.sum() == 0 and probe.sum() == 0):
+        return None
+    centres = (edges[:-1] + edges[1:]) / 2
+    width = np.diff(edges).min() * 0.38
+    fig = _figure()
+    ax = fig.add_subplot()
+    for shift, h, key, label in ((-width / 2, org, "organic", "organic ratings, tonight"),
+                                 (width / 2, probe, "probe", "probe ratings, whole window")):
+        share = h / h.sum() if h.sum() else h
+        ax.bar(centres + shift, share, width=width, color=COLOURS[key], label=label)
+    ax.set_xticks(centres, [f"{c:g}" for c in centres])
+    ax.set_xlabel("rating (stars)")
+    ax.set_ylabel("share of ratings")
+    _style(ax)
+    ax.legend(frameon=False, loc="upper left")
+    return _svg_data_uri(fig)
+
+
+def _trend_frame(series: pd.DataFrame, run_date: str, cfg: Config, alert_dates: set[str]) -> pd.DataFrame:
+    """Per night up to ``run_date``: mean shift, its band (as the rule saw it), alert flag, MAEs."""
+    upto = series[series["run_date"] <= run_date].sort_values("run_date").reset_index(drop=True)
+    rows = []
+    start = max(0, len(upto) - TREND_NIGHTS)
+    for i in range(start, len(upto)):
+        r = upto.iloc[i].to_dict()
+        band = metric_band("skew_mean_shift", r, upto.iloc[:i], cfg)
+        rows.append({
+            "run_date": r["run_date"], "skew_mean_shift": _num(r.get("skew_mean_shift")),
+            "band_lo": band.lo if band else None, "band_hi": band.hi if band else None,
+            "band_median": band.median if band else None, "skew_alert": r["run_date"] in alert_dates,
+            **{f"{m}_{s}": _num(r.get(f"{m}_{s}")) for m in MODELS for s in ("mae", "mae_lo", "mae_hi")},
+            "pred_psi": _num(r.get("pred_psi")), "probe_coverage": _num(r.get("probe_coverage")),
+        })
+    return pd.DataFrame(rows)
+
+
+@_charting
+def chart_skew_trend(trend: pd.DataFrame) -> str | None:
+    """Mean shift per night with its trailing band and the nights that raised a skew alert."""
+    if trend.empty or trend["skew_mean_shift"].isna().all():
+        return None
+    x = np.arange(len(trend))
+    y = trend["skew_mean_shift"].astype(float).to_numpy()
+    lo = trend["band_lo"].astype(float).to_numpy()
+    hi = trend["band_hi"].astype(float).to_numpy()
+    fig = _figure(10.0, 3.3)
+    ax = fig.add_subplot()
+    ax.fill_between(x, lo, hi, color=COLOURS["band"], step="mid", label="usual range (trailing band)",
+                    where=~np.isnan(lo))
+    ax.plot(x, y, color=COLOURS["ink"], linewidth=1.2, marker="o", markersize=3, label="organic \u2212 probe mean")
+    hit = trend["skew_alert"].to_numpy(dtype=bool)
+    if hit.any():
+        ax.scatter(x[hit], y[hit], s=70, marker="D", facecolors="none", edgecolors=COLOURS["alert"],
+                   linewidths=1.6, label="skew alert", zorder=3)
+    ax.axhline(0, color=COLOURS["grid"], linewidth=0.8)
+    step = max(1, len(x) // 8)
+    ax.set_xticks(x[::step], _short_dates(trend["run_date"].tolist())[::step])
+    ax.set_ylabel("organic − probe mean (stars)")
+    ax.set_xlim(-0.6, len(x) - 0.4)
+    _style(ax)
+    ax.legend(frameon=False, loc="lower left", bbox_to_anchor=(0, 1.0), ncols=3)
+    return _svg_data_uri(fig)
+
+
+@_charting
+def chart_prediction_shift(detail: Mapping) -> str | None:
+    """Predicted-rating shares per bin: candidate vs live."""
+    cand = detail.get("pred_hist_candidate")
+    live = detail.get("pred_hist_live")
+    edges = np.asarray(detail.get("pred_edges") or [], dtype=float)
+    if not cand or edges.size != len(cand) + 1:
+        return None
+    centres = (edges[:-1] + edges[1:]) / 2
+    width = np.diff(edges).min() * (0.4 if live else 0.8)
+    fig = _figure()
+    ax = fig.add_subplot()
+    series = [("candidate", np.asarray(cand, float))] + ([("live", np.asarray(live, float))] if live else [])
+    for j, (key, h) in enumerate(series):
+        offset = (j - (len(series) - 1) / 2) * width
+        ax.bar(centres + offset, h / h.sum() if h.sum() else h, width=width, color=COLOURS[key], label=key)
+    ax.set_xlabel("predicted rating (stars)")
+    ax.set_ylabel("share of sampled pairs")
+    _style(ax)
+    ax.legend(frameon=False, loc="upper left")
+    return _svg_data_uri(fig)
+
+
+@_charting
+def chart_mae_trend(trend: pd.DataFrame) -> str | None:
+    """Held-out probe MAE per night for candidate, shadow and live, with confidence intervals."""
+    if trend.empty or all(trend[f"{m}_mae"].isna().all() for m in MODELS):
+        return None
+    x = np.arange(len(trend))
+    fig = _figure(10.0, 3.3)
+    ax = fig.add_subplot()
+    for m in MODELS:
+        y = trend[f"{m}_mae"].astype(float).to_numpy()
+        if np.isnan(y).all():
+            continue
+        lo = trend[f"{m}_mae_lo"].astype(float).to_numpy()
+        hi = trend[f"{m}_mae_hi"].astype(float).to_numpy()
+        ax.fill_between(x, lo, hi, color=COLOURS[m], alpha=0.14, linewidth=0)
+        ax.plot(x, y, color=COLOURS[m], marker="o", markersize=3, linewidth=1.4, label=m)
+    step = max(1, len(x) // 8)
+    ax.set_xticks(x[::step], _short_dates(trend["run_date"].tolist())[::step])
+    ax.set_ylabel("held-out probe MAE (stars)")
+    ax.set_xlim(-0.6, len(x) - 0.4)
+    _style(ax)
+    ax.legend(frameon=False, loc="lower left", bbox_to_anchor=(0, 1.0), ncols=3)
+    return _svg_data_uri(fig)
+
+
+# --------------------------------------------------------------------------------------------------
+# Report content
+# --------------------------------------------------------------------------------------------------
+
+def _delivery_text(rec: Mapping) -> str:
+    d = rec.get("delivery") or {}
+    if rec.get("phase") != "final":
+        return "delivery pending (the run stopped before delivery finished)"
+    parts = []
+    for key in ("event", "webhook"):
+        out = d.get(key) or {}
+        if out:
+            parts.append(f"{key}: {out.get('outcome')}" + (f" ({out['error']})" if out.get("error") else ""))
+    for name, out in (d.get("blocks") or {}).items():
+        parts.append(f"{name}: {(out or {}).get('outcome')}")
+    return "; ".join(parts) or "not delivered"
+
+
+def _alert_view(rec: Mapping) -> dict:
+    band = rec.get("band") or [None, None]
+    lo, hi = (band + [None, None])[:2]
+    unit = "bits" if rec.get("metric") == "skew_js" else ""
+    return {
+        "alert_id": rec.get("alert_id", ""), "kind": rec.get("kind", ""), "severity": rec.get("severity", ""),
+        "metric": rec.get("metric", ""), "value": fmt(rec.get("value"), 3, unit=unit),
+        "band": f"{fmt(lo, 3)} \u2026 {fmt(hi, 3)}", "explanation": rec.get("explanation", ""),
+        "status": rec.get("status", ""), "count": rec.get("count", 1), "first_date": rec.get("first_date", ""),
+        "last_date": rec.get("last_date", ""), "also": ", ".join(rec.get("also") or []),
+        "delivery": _delivery_text(rec),
+    }
+
+
+def build_report(ws: Workspace, run_date: str, cfg: Config) -> dict:
+    """Everything the page shows, as plain data (the JSON twin plus chart data URIs under ``charts``)."""
+    row = night_row(ws, run_date)
+    series = read_metrics(ws, until=run_date)
+    history = read_history(ws)
+    alerts = night_alerts(ws, run_date, history)
+    withdrawn = {(r.get("alert_id"), r.get("run_date")) for r in history if r.get("phase") == WITHDRAWN}
+    skew_dates = {str(r.get("run_date")) for r in history if r.get("kind") == "skew_shift"
+                  and (r.get("alert_id"), r.get("run_date")) not in withdrawn}
+    detail = _detail(row)
+    trend = _trend_frame(series, run_date, cfg, skew_dates)
+    clean_row = {k: v for k, v in jsonable(row).items() if k != "detail_json"}
+    return {
+        "format": REPORT_FORMAT,
+        "run_date": run_date,
+        "metrics": clean_row,
+        "detail": jsonable(detail),
+        "alerts": jsonable(alerts),
+        "trend": jsonable(trend.to_dict(orient="records")),
+        "charts": {
+            "rating_histograms": chart_rating_histograms(detail),
+            "skew_trend": chart_skew_trend(trend),
+            "prediction_shift": chart_prediction_shift(detail),
+            "mae_trend": chart_mae_trend(trend),
+        },
+        "settings": {"baseline_nights": cfg.drift.baseline_nights, "mad_k": cfg.drift.mad_k,
+                     "min_baseline_nights": cfg.drift.min_baseline_nights,
+                     "skew_margin": cfg.evaluate.skew_margin, "confidence": cfg.evaluate.confidence,
+                     "scale": [cfg.scale.min, cfg.scale.max, cfg.scale.step]},
+    }
+
+
+def _environment() -> jinja2.Environment:
+    env = jinja2.Environment(loader=jinja2.FileSystemLoader(str(TEMPLATES)), autoescape=True,
+                             undefined=jinja2.ChainableUndefined, trim_blocks=True, lstrip_blocks=True)
+    env.filters.update(fmt=fmt, pct=pct, count=count)
+    return env
+
+
+def render_html(report: Mapping) -> str:
+    """The page for one :func:`build_report` result."""
+    m = report["metrics"]
+    d = report["detail"]
+    severities = [a.get("severity") for a in report["alerts"]]
+    verdict = ("quiet night: no alerts" if not severities else
+               f"{len(severities)} alert{'s' if len(severities) != 1 else ''} "
+               f"({', '.join(f'{severities.count(s)} {s}' for s in ('critical', 'warning', 'info') if s in severities)})")
+    template = _environment().get_template("report.html.j2")
+    return template.render(
+        r=report, m=m, d=d, verdict=verdict, worst=("critical" if "critical" in severities else
+                                                    "warning" if severities else "calm"),
+        alerts=[_alert_view(a) for a in report["alerts"]],
+        segments=[(name, (d.get("segments") or {}).get(name) or {}) for name in ("up", "down", "neutral", "unknown")],
+        models=[(mdl, {s: m.get(f"{mdl}_{s}") for s in ("mae", "mae_lo", "mae_hi", "rmse", "rmse_lo", "rmse_hi", "n")})
+                for mdl in MODELS],
+        eval_segments=d.get("evaluation_segments") or {},
+        skew_names=SKEW_METRICS,
+    )
+
+
+def render_report(ws: Workspace, run_date: str, cfg: Config) -> tuple[Path, Path]:
+    """Write ``ws.reports/<run_date>.html`` and ``.json`` from stored metrics and alert history only."""
+    report = build_report(ws, run_date, cfg)
+    html = render_html(report)
+    twin = {k: v for k, v in report.items() if k != "charts"}
+    html_path = ws.reports / f"{run_date}.html"
+    json_path = ws.reports / f"{run_date}.json"
+    atomic_write_bytes(html_path, html.encode("utf-8"))
+    atomic_write_bytes(json_path, (json.dumps(twin, indent=2, sort_keys=True, allow_nan=False) + "\n").encode("utf-8"))
+    return html_path, json_path
+
+
+# --------------------------------------------------------------------------------------------------
+# Prefect artifact helpers (plain data; the flow creates the artifacts)
+# --------------------------------------------------------------------------------------------------
+
+_MD_SPECIAL = re.compile(r"([\\`*_{}\[\]()#+\-.!|<>&])")
+
+
+def _md(text: object) -> str:
+    """Escape text for Markdown (and any HTML the renderer would pass through)."""
+    return _MD_SPECIAL.sub(r"\\\1", str(text)).replace("\n", " ")
+
+
+def summary_table(row: Mapping, alerts: Sequence[Mapping]) -> list[dict]:
+    """Key numbers of the night as ``[{"metric", "value"}]`` rows (for a Prefect table artifact)."""
+    rows = [
+        ("night", str(row.get("run_date"))),
+        ("alerts", str(len(alerts)) + (" (" + ", ".join(sorted({str(a.get('kind')) for a in alerts})) + ")"
+                                      if alerts else "")),
+        ("selection skew tonight: organic \u2212 probe mean", fmt(row.get("skew_mean_shift"), 3, True, "stars")),
+        ("selection skew tonight: Jensen-Shannon", fmt(row.get("skew_js"), 4, unit="bits")),
+        ("selection skew tonight: Wasserstein-1", fmt(row.get("skew_w1"), 3, unit="stars")),
+        ("members skewed up / down / neutral",
+         f"{pct(row.get('share_up'))} / {pct(row.get('share_down'))} / {pct(row.get('share_neutral'))}"),
+        ("candidate MAE (held-out probes)", _mae_text(row, "candidate")),
+        ("shadow MAE", _mae_text(row, "shadow")),
+        ("live MAE", _mae_text(row, "live")),
+        ("prediction shift PSI (candidate vs live)", fmt(row.get("pred_psi"), 4)),
+        ("rows ingested / quarantined", f"{count(row.get('rows_ingested'))} / {count(row.get('rows_quarantined'))}"),
+        ("probe coverage of active members", pct(row.get("probe_coverage"), 2)),
+    ]
+    return [{"metric": k, "value": v} for k, v in rows]
+
+
+def _mae_text(row: Mapping, model: str) -> str:
+    if _num(row.get(f"{model}_mae")) is None:
+        return "\u2014"
+    return (f"{fmt(row.get(f'{model}_mae'), 3)} [{fmt(row.get(f'{model}_mae_lo'), 3)}, "
+            f"{fmt(row.get(f'{model}_mae_hi'), 3)}]")
+
+
+def summary_markdown(row: Mapping, alerts: Sequence[Mapping]) -> str:
+    """A short Markdown summary of the night (for a Prefect markdown artifact); data is escaped."""
+    lines = [f"# tarewise night {_md(row.get('run_date'))}", ""]
+    if alerts:
+        lines.append(f"**{len(alerts)} alert(s)**")
+        lines.append("")
+        for a in alerts:
+            lines.append(f"- **{_md(a.get('severity'))}** {_md(a.get('kind'))}"
+                         f" (night {_md(a.get('count', 1))} of this episode): {_md(a.get('explanation'))}")
+    else:
+        lines.append("Quiet night: no alerts.")
+    lines += ["", "| metric | value |", "| --- | --- |"]
+    lines += [f"| {_md(r['metric'])} | {_md(r['value'])} |" for r in summary_table(row, alerts)]
+    return "\n".join(lines) + "\n"

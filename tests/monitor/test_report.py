@@ -1,0 +1,209 @@
+"""The nightly HTML report and its JSON twin: built from stored metrics and alert history only,
+escaped, self-contained, deterministic, and (when Chromium is installed) rendered by a real browser.
+
+Invented scenario data: library-app members rating titles 1-5 stars; every number is invented.
+"""
+
+from __future__ import annotations
+
+import json
+import re
+import shutil
+import subprocess
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from tasks.monitor.alert_delivery import append_history, night_alerts, raise_alerts
+from tasks.monitor.metrics_store import MetricsStoreError, night_row, write_night_metrics
+from tasks.monitor.report import render_report, summary_markdown, summary_table
+from tasks.monitor.skew_metrics import compute_night_metrics
+
+EVIL_MEMBER = 'member-<script>alert("boo")</script>\'q'
+EVIL_VERSION = 'v-"><script>alert(1)</script>'
+EVIL_REASON = "<img src=x onerror=alert(2)> & 'bad'"
+DATES = [f"2024-06-{d:02d}" for d in range(1, 9)]
+
+
+def _night_ratings(rng: np.random.Generator, date: str, jump: float) -> pd.DataFrame:
+    members = [f"member-{i:06d}" for i in range(40)] + [EVIL_MEMBER]
+    rows = []
+    for m in members:
+        lenient = 1.5 if m == EVIL_MEMBER else 0.0  # the evil member is the most skewed one
+        for _ in range(3):
+            rows.append((m, f"title-{rng.integers(0, 300):06d}",
+                         float(np.clip(np.rint(3.4 + jump + lenient + rng.normal(0, 0.8)), 1, 5)), "organic", date))
+        if m == EVIL_MEMBER or rng.random() < 0.15:
+            rows.append((m, f"title-{rng.integers(0, 300):06d}",
+                         float(np.clip(np.rint(3.0 + rng.normal(0, 0.9)), 1, 5)), "probe", date))
+    rows.append((EVIL_MEMBER, "title-000001", 1.0, "probe", date))  # keeps them the most skewed member
+    return pd.DataFrame(rows, columns=["user_id", "item_id", "rating", "source", "dt"])
+
+
+@pytest.fixture
+def stored_nights(ws, cfg):
+    """Eight nights computed, stored and alerted on; the last night's organic ratings jump up."""
+    rng = np.random.default_rng(5)
+    frames = []
+    for i, date in enumerate(DATES):
+        frames.append(_night_ratings(rng, date, jump=1.2 if date == DATES[-1] else 0.0))
+        window = pd.concat(frames, ignore_index=True)
+        live = None if i == 0 else rng.normal(3.5, 0.5, 500)
+        evaluation = {
+            "candidate": {"mae": 0.8 - 0.01 * i, "mae_lo": 0.75 - 0.01 * i, "mae_hi": 0.85 - 0.01 * i,
+                          "rmse": 1.0, "rmse_lo": 0.95, "rmse_hi": 1.05, "n": 120,
+                          "segments": {"up": {"mae": 0.9}, "neutral": {"mae": 0.7}}},
+            "shadow": {"mae": 0.82, "mae_lo": 0.77, "mae_hi": 0.87, "rmse": 1.02, "rmse_lo": 0.97,
+                       "rmse_hi": 1.07, "n": 120},
+            "live": None if i == 0 else {"mae": 0.81, "mae_lo": 0.76, "mae_hi": 0.86, "rmse": 1.0,
+                                         "rmse_lo": 0.95, "rmse_hi": 1.05, "n": 120},
+        }
+        row = compute_night_metrics(
+            date, window, cfg.scale, cfg.evaluate.skew_margin,
+            probe_errors=pd.Series(rng.gamma(4.0, 0.2, 40)), reference_shares=[0.1, 0.14],
+            pred_candidate=rng.normal(3.6, 0.5, 500), pred_live=live,
+            profiles_candidate=rng.random((40, 10)), profiles_live=None if i == 0 else rng.random((40, 10)),
+            evaluation=evaluation,
+            volumes={"rows_read": 127, "rows_ingested": 125, "rows_quarantined": 2,  # 1.6%: under the guard
+                     "quarantined_by_reason": {EVIL_REASON: 1, "rating_out_of_range": 1},
+                     "new_users": 2, "new_items": 7},
+            versions={"candidate": EVIL_VERSION, "live": "v-2024-06-01"})
+        write_night_metrics(ws, row)
+        raise_alerts(ws, date, cfg, env={})
+    # an alert whose text carries markup (as if an upstream id leaked into it)
+    append_history(ws, {"alert_id": "probe_coverage_low-2024-06-08", "kind": "probe_coverage_low",
+                        "severity": "critical", "metric": "probe_coverage", "value": 0.001, "band": [0.005, None],
+                        "explanation": f"coverage fell for {EVIL_MEMBER}", "run_date": DATES[-1],
+                        "status": "new", "count": 1, "first_date": DATES[-1], "last_date": DATES[-1],
+                        "phase": "final", "delivery": {"webhook": {"outcome": "not_configured"}}})
+    return ws
+
+
+def test_report_escapes_ids_and_carries_the_numbers(stored_nights, cfg):
+    html_path, json_path = render_report(stored_nights, DATES[-1], cfg)
+    assert html_path == stored_nights.reports / f"{DATES[-1]}.html" and json_path.suffix == ".json"
+    html = html_path.read_text(encoding="utf-8")
+    # ids rendered as text: the escaped forms are present, the raw markup is not
+    assert "member-&lt;script&gt;alert(&#34;boo&#34;)&lt;/script&gt;&#39;q" in html
+    assert "v-&#34;&gt;&lt;script&gt;alert(1)&lt;/script&gt;" in html
+    assert "&lt;img src=x onerror=alert(2)&gt; &amp; &#39;bad&#39;" in html
+    assert "<script>alert" not in html and "<img src=x" not in html
+    assert "<script" not in html.lower()  # the page has no scripts at all
+    # the night's numbers and the alert are there
+    row = night_row(stored_nights, DATES[-1])
+    assert f"{row['skew_mean_shift']:+.3f}" in html
+    assert "skew_shift" in html and "probe_coverage_low" in html
+    assert html.count('src="data:image/svg+xml;base64,') == 4  # histograms, skew trend, predictions, MAE
+
+
+def test_report_is_self_contained(stored_nights, cfg):
+    html = render_report(stored_nights, DATES[-1], cfg)[0].read_text(encoding="utf-8")
+    # nothing fetched from elsewhere: no remote src/href, no CSS url()/@import, no <link>, no fonts
+    assert not re.search(r"""(src|href)\s*=\s*["']?\s*(https?:)?//""", html, re.I)
+    assert not re.search(r"""url\(\s*["']?\s*(https?:)?//""", html, re.I)
+    assert "@import" not in html and "<link" not in html.lower() and "@font-face" not in html
+    assert not re.search(r"https?://", html.split("<body>")[1].replace("http://www.w3.org", ""))
+
+
+def test_json_twin_and_determinism(stored_nights, cfg):
+    html_path, json_path = render_report(stored_nights, DATES[-1], cfg)
+    first_html, first_json = html_path.read_bytes(), json_path.read_bytes()
+    twin = json.loads(first_json)  # strict JSON: NaN would not parse back as a number
+    assert twin["run_date"] == DATES[-1] and twin["format"] == "tarewise-night-report/1"
+    assert twin["metrics"]["candidate_version"] == EVIL_VERSION
+    assert {a["kind"] for a in twin["alerts"]} == {"skew_shift", "probe_coverage_low"}
+    assert [t["run_date"] for t in twin["trend"]] == DATES
+    assert twin["trend"][-1]["skew_alert"] is True and twin["trend"][-1]["band_hi"] is not None
+    assert "charts" not in twin
+    # rebuilt from stored metrics + history only: deleting the reports changes nothing
+    shutil.rmtree(stored_nights.reports)
+    html_path, json_path = render_report(stored_nights, DATES[-1], cfg)
+    assert html_path.read_bytes() == first_html and json_path.read_bytes() == first_json
+
+
+def test_quiet_first_night_renders(stored_nights, cfg):
+    html = render_report(stored_nights, DATES[0], cfg)[0].read_text(encoding="utf-8")
+    assert "quiet night: no alerts" in html
+    assert "Not enough nights yet." not in html  # the single night is still drawn
+
+
+def test_missing_night_is_named(ws, cfg):
+    with pytest.raises(MetricsStoreError, match="no metrics stored for 2024-01-01"):
+        render_report(ws, "2024-01-01", cfg)
+
+
+def test_summary_helpers_escape_and_summarise(stored_nights):
+    row = night_row(stored_nights, DATES[-1])
+    alerts = night_alerts(stored_nights, DATES[-1])
+    md = summary_markdown(row, alerts)
+    assert "<script>" not in md and "\\<script\\>" in md
+    assert md.startswith(f"# tarewise night {DATES[-1].replace('-', chr(92) + '-')}")
+    table = summary_table(row, alerts)
+    assert all(set(r) == {"metric", "value"} for r in table)
+    values = {r["metric"]: r["value"] for r in table}
+    assert values["alerts"].startswith("2 (")
+    assert values["rows ingested / quarantined"] == "125 / 2"
+
+
+CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser") or (
+    "/usr/bin/chromium" if Path("/usr/bin/chromium").exists() else None)
+
+
+def _chromium(args: list[str], profile: Path) -> subprocess.CompletedProcess:
+    return subprocess.run(
+        [CHROMIUM, "--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
+         "--disable-component-update", "--disable-sync", "--no-first-run", f"--user-data-dir={profile}",
+         # any attempt to reach the network fails, so a page that needs it would show it
+         "--host-resolver-rules=MAP * ~NOTFOUND", "--enable-logging=stderr", "--v=0", *args],
+        capture_output=True, text=True, timeout=120)
+
+
+@pytest.mark.skipif(CHROMIUM is None, reason="Chromium is not installed")
+def test_report_renders_in_headless_chromium(stored_nights, cfg, tmp_path):
+    html_path, _ = render_report(stored_nights, DATES[-1], cfg)
+    dom = _chromium(["--dump-dom", html_path.as_uri()], tmp_path / "profile-dom")
+    assert dom.returncode == 0, dom.stderr[-2000:]
+    assert "drift report for the night of" in dom.stdout
+    # the browser saw the ids as text, not as elements
+    assert "member-&lt;script&gt;alert" in dom.stdout and "<script" not in dom.stdout.lower()
+    problems = [ln for ln in dom.stderr.splitlines()
+                if "CONSOLE" in ln or "Uncaught" in ln or "Refused to" in ln or "ERR_NAME_NOT_RESOLVED" in ln]
+    assert problems == []
+    shot = tmp_path / "report.png"
+    res = _chromium(["--hide-scrollbars", "--window-size=1100,3000", f"--screenshot={shot}", html_path.as_uri()],
+                    tmp_path / "profile-shot")
+    assert res.returncode == 0 and shot.exists()
+    assert shot.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n" and shot.stat().st_size > 50_000
+
+
+# ----------------------------------------------------------------------------------------------
+# The stored metrics series the report is built from
+# ----------------------------------------------------------------------------------------------
+
+def test_metrics_store_replaces_a_rerun_date_and_keeps_order(ws):
+    from tasks.monitor.metrics_store import prune_metrics, read_metrics
+
+    write_night_metrics(ws, {"run_date": "2024-06-02", "skew_mean_shift": 0.2})
+    write_night_metrics(ws, {"run_date": "2024-06-01", "skew_mean_shift": 0.1})
+    write_night_metrics(ws, {"run_date": "2024-06-02", "skew_mean_shift": 0.25, "skew_test": "chi2"})
+    m = read_metrics(ws)
+    assert m["run_date"].tolist() == ["2024-06-01", "2024-06-02"]
+    assert m["skew_mean_shift"].tolist() == [0.1, 0.25] and m.loc[1, "skew_test"] == "chi2"
+    assert read_metrics(ws, until="2024-06-01")["run_date"].tolist() == ["2024-06-01"]
+    assert prune_metrics(ws, before="2024-06-02") == 1
+    assert read_metrics(ws)["run_date"].tolist() == ["2024-06-02"]
+
+
+def test_metrics_store_refuses_bad_rows_and_names_a_bad_file(ws):
+    with pytest.raises(MetricsStoreError, match="not_a_metric"):
+        write_night_metrics(ws, {"run_date": "2024-06-01", "not_a_metric": 1.0})
+    with pytest.raises(MetricsStoreError, match="YYYY-MM-DD"):
+        write_night_metrics(ws, {"run_date": "06/01/2024"})
+    with pytest.raises(MetricsStoreError, match="skew_organic_n"):
+        write_night_metrics(ws, {"run_date": "2024-06-01", "skew_organic_n": "many"})
+    ws.metrics.parent.mkdir(parents=True, exist_ok=True)
+    ws.metrics.write_bytes(b"this is not parquet")
+    with pytest.raises(MetricsStoreError, match=str(ws.metrics)):
+        write_night_metrics(ws, {"run_date": "2024-06-01"})
