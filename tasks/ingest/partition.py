@@ -1,0 +1,100 @@
+"""Listing a day's partition: which files ``<logs>/dt=YYYY-MM-DD/`` holds, before any is read.
+
+Logs may live on any ``pyarrow.fs`` location (local folder, ``file://``, ``s3://``, ``gs://``). Files and
+folders whose name starts with ``_`` or ``.`` are skipped silently (markers, ground-truth folders, temp
+files); other files not ending in ``.parquet`` are listed as ignored so a run can warn about them.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import pyarrow as pa
+import pyarrow.fs as pafs
+
+from tasks.config import Config
+from tasks.dates import DateError, parse_date
+from tasks.ingest.errors import IngestError
+from tasks.workspace import resolve
+
+
+@dataclass
+class PartitionListing:
+    """The files of one day's partition, before any is read.
+
+    part: the partition folder inside the filesystem; paths: ``*.parquet`` files, sorted (the order rows
+    keep); ignored: other files not read; missing: the partition is absent or empty and
+    ``input.missing_partition = "skip"``.
+    """
+
+    run_date: str
+    part: str
+    paths: list[str]
+    ignored: list[str] = field(default_factory=list)
+    missing: bool = False
+
+
+def list_partition(logs: str, run_date: str, cfg: Config) -> PartitionListing:
+    """List ``<logs>/dt=<run_date>/``. Raises IngestError for a missing or empty partition (unless
+    ``input.missing_partition = "skip"``) and for a partition that is a file."""
+    parse_date(run_date)
+    fs, part = partition_path(logs, run_date)
+    try:
+        info = fs.get_file_info(part)
+    except (OSError, pa.ArrowException) as exc:
+        raise IngestError(f"partition {part}: cannot be listed ({exc})") from exc
+    skip = cfg.input.missing_partition == "skip"
+    if info.type == pafs.FileType.NotFound:
+        if skip:
+            return PartitionListing(run_date, part, [], missing=True)
+        raise IngestError(f"partition not found: {part} (run date {run_date}; set "
+                          "input.missing_partition = \"skip\" to treat a missing day as empty)")
+    if info.type != pafs.FileType.Directory:
+        raise IngestError(f"partition {part} is a file, expected a folder of Parquet files")
+    paths, ignored = _list_files(fs, part)
+    if not paths:
+        if skip:
+            return PartitionListing(run_date, part, [], ignored, missing=True)
+        raise IngestError(f"partition {part} holds no *.parquet files (run date {run_date}"
+                          + (f"; not read: {', '.join(ignored)}" if ignored else "") + ")")
+    return PartitionListing(run_date, part, paths, ignored)
+
+def partition_path(logs: str, run_date: str) -> tuple[pafs.FileSystem, str]:
+    """(filesystem, ``dt=<run_date>`` folder inside it) for the logs location ``logs``."""
+    fs, base = resolve(logs)
+    return fs, f"{base.rstrip('/')}/dt={run_date}"
+
+
+def list_partition_dates(logs: str) -> list[str]:
+    """Dates of the ``dt=YYYY-MM-DD`` folders under ``logs``, sorted (underscore/dot folders skipped)."""
+    fs, base = resolve(logs)
+    info = fs.get_file_info(base)
+    if info.type == pafs.FileType.NotFound:
+        raise IngestError(f"logs folder not found: {logs}")
+    dates = []
+    for entry in fs.get_file_info(pafs.FileSelector(base, recursive=False)):
+        name = entry.base_name
+        if entry.type != pafs.FileType.Directory or not name.startswith("dt="):
+            continue
+        try:
+            dates.append(parse_date(name[3:], "partition date").isoformat())
+        except DateError:
+            continue
+    return sorted(dates)
+
+
+def _hidden(rel: str) -> bool:
+    return any(part.startswith(("_", ".")) for part in rel.split("/"))
+
+
+def _list_files(fs: pafs.FileSystem, part: str) -> tuple[list[str], list[str]]:
+    parquet, ignored = [], []
+    for entry in fs.get_file_info(pafs.FileSelector(part, recursive=True)):
+        if entry.type != pafs.FileType.File:
+            continue
+        rel = entry.path[len(part):].lstrip("/")
+        if _hidden(rel):
+            continue
+        (parquet if entry.base_name.endswith(".parquet") else ignored).append(entry.path)
+    return sorted(parquet), sorted(ignored)
+
