@@ -1,0 +1,7 @@
+"""``python -m flows.cli``: the same command line as the ``tarewise`` entry point."""
+
+import sys
+
+from flows.cli import app
+
+sys.exit(app())

@@ -1,0 +1,102 @@
+"""Commands that look at the workspace and change nothing in it: ``versions``, ``status``, ``report``
+(re-renders a night's report from stored metrics) and ``score`` (writes only its ``--out`` file).
+
+None of them runs a flow, so none imports Prefect: they start in well under a second.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Optional
+
+import typer
+
+from flows.cli.common import ConfigOpt, SharedOpt, WorkspaceOpt, console, err, fail, load
+from flows.cli.tables import alerts_table, runs_table, versions_table
+
+
+def score(pairs: Path = typer.Option(..., "--pairs", help="Parquet with user_id, item_id columns."),
+          out: Path = typer.Option(..., "--out", help="Where to write the scored Parquet."),
+          version: Optional[str] = typer.Option(None, "--version", help="Version id (default: live)."),
+          config: Optional[Path] = ConfigOpt, workspace: Optional[str] = WorkspaceOpt) -> None:
+    """Score arbitrary (user_id, item_id) pairs; unknown ids get a fallback score and a flag."""
+    cfg = load(config, None, workspace)
+    from tasks.publish.scoring_io import score_pairs
+    try:
+        n, used, fallbacks = score_pairs(cfg, pairs, out, version)
+    except Exception as exc:  # noqa: BLE001
+        fail(exc, "score")
+    console.print(f"scored {n} pairs with version {used} -> {out} ({fallbacks} with a fallback score)")
+
+
+def versions_cmd(config: Optional[Path] = ConfigOpt, workspace: Optional[str] = WorkspaceOpt) -> None:
+    """List versions with state, run date, held-out MAE and gate reason."""
+    cfg = load(config, None, workspace)
+    from tasks.publish.versions import list_versions
+    from tasks.workspace import Workspace
+    t, reasons = versions_table(list_versions(Workspace.at(cfg.paths.workspace)),
+                                f"versions in {cfg.paths.workspace}")
+    console.print(t)
+    for line in reasons:
+        console.print(line, highlight=False, soft_wrap=True)
+
+
+def report(date: Optional[str] = typer.Option(None, "--date", "-d", help="Night to render (default: latest)."),
+           config: Optional[Path] = ConfigOpt, workspace: Optional[str] = WorkspaceOpt) -> None:
+    """Re-render a night's HTML report and its JSON twin from stored metrics."""
+    cfg = load(config, None, workspace)
+    from tasks.monitor.report import render_report
+    from tasks.workspace import Workspace
+    ws = Workspace.at(cfg.paths.workspace)
+    if date is None:
+        from tasks.monitor.metrics_store import read_metrics
+        m = read_metrics(ws)
+        if m.empty:
+            err.print(f"no stored metrics in {ws.metrics}; run a night first")
+            raise typer.Exit(1)
+        date = str(m["run_date"].max())
+    try:
+        html, js = render_report(ws, date, cfg)
+    except Exception as exc:  # noqa: BLE001
+        fail(exc, "report")
+    console.print(f"report: {html}\njson:   {js}")
+
+
+def status(runs: int = typer.Option(10, "--runs", help="How many ledger rows to show."),
+           days: int = typer.Option(7, "--days", help="Alerts of this many nights up to the newest run."),
+           config: Optional[Path] = ConfigOpt, workspace: Optional[str] = WorkspaceOpt,
+           shared: Optional[str] = SharedOpt) -> None:
+    """Live version, shared copy, lock, last runs from the ledger, and recent alerts."""
+    cfg = load(config, None, workspace, shared)
+    from tasks.operate.status import status as workspace_status
+    from tasks.workspace import Workspace
+    s = workspace_status(Workspace.at(cfg.paths.workspace), cfg.runtime.timezone, cfg.runtime.lock_stale_seconds,
+                         runs, days)
+    console.print(f"workspace: {s['workspace']}", highlight=False)
+    lv = s["live"]
+    if lv:
+        mae = f", held-out MAE {lv['mae']:.4f} (n={lv['heldout']})" if lv.get("mae") is not None else ""
+        console.print(f"live: [bold]{lv['version_id']}[/] (night {lv['run_date']}, {lv['method']}{mae}); "
+                      f"since {lv['since']}: {lv['reason']}", highlight=False)
+    else:
+        console.print("live: none yet")
+    if cfg.paths.shared:
+        from tasks.operate.shared_copy import SharedCopyError, pending_files
+        try:
+            n = pending_files(Workspace.at(cfg.paths.workspace), cfg.paths.shared)
+            console.print(f"shared copy: {cfg.paths.shared}: " + (f"{n} file(s) not copied yet (`tarewise share`)"
+                                                                 if n else "up to date"), highlight=False)
+        except SharedCopyError as exc:
+            console.print(f"shared copy: {exc}", highlight=False)
+    lk = s["lock"]
+    if lk:
+        state = "stale (will be taken over)" if lk["stale"] else "held"
+        console.print(f"lock: {state} by {lk.get('what', '?')} (pid {lk.get('pid')} on {lk.get('host')})",
+                      highlight=False)
+    else:
+        console.print("lock: free")
+    console.print(runs_table(s["runs"]))
+    if not s["alerts"]:
+        console.print(f"alerts: none in the {s['days']} nights up to {s['as_of']}")
+        return
+    console.print(alerts_table(s["alerts"], s["days"], s["as_of"]))
