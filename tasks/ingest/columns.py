@@ -152,4 +152,3 @@ def _as_source(arr: pa.ChunkedArray, path: str, name: str) -> pa.ChunkedArray:
             or pa.types.is_null(t) or pa.types.is_boolean(t)):
         return arr.cast(pa.string())
     raise _type_error(path, "source", name, t, "text labels")
-

@@ -59,6 +59,7 @@ def list_partition(logs: str, run_date: str, cfg: Config) -> PartitionListing:
                           + (f"; not read: {', '.join(ignored)}" if ignored else "") + ")")
     return PartitionListing(run_date, part, paths, ignored)
 
+
 def partition_path(logs: str, run_date: str) -> tuple[pafs.FileSystem, str]:
     """(filesystem, ``dt=<run_date>`` folder inside it) for the logs location ``logs``."""
     fs, base = resolve(logs)
@@ -97,4 +98,3 @@ def _list_files(fs: pafs.FileSystem, part: str) -> tuple[list[str], list[str]]:
             continue
         (parquet if entry.base_name.endswith(".parquet") else ignored).append(entry.path)
     return sorted(parquet), sorted(ignored)
-

@@ -65,7 +65,8 @@ CASES = {
                              reason="after the end of the run date (input.max_future_seconds)", rejected=1, valid=2),
     "wrong_day_partition": Case(lambda: [("p.parquet", table([(f"m{k}", "t", 3.0, utc("2026-10-31T12:00:00"),
                                                                "organic") for k in range(3)]))],
-                                reason="before the partition date by more than input.max_future_seconds (wrong-day partition)",
+                                reason="before the partition date by more than input.max_future_seconds "
+                                       "(wrong-day partition)",
                                 rejected=3, valid=0),
     "timestamp_null": Case(lambda: [("p.parquet", table(good(1) + [("m", "t", 3.0, None, "organic")]))],
                            reason="event_time is missing", rejected=1, valid=1),
