@@ -11,6 +11,7 @@ import torch
 from tasks.config import Config, ConfigError
 from tasks.engine.checkpoint import Checkpoint
 from tasks.engine.per_user import SCALE_RANGE, shrinkage_strength
+from tasks.engine.settings import Settings
 from tasks.engine.skew_model import fit_ridge
 from tasks.engine.trainer import fit
 
@@ -103,14 +104,14 @@ def world():
 
 
 @pytest.fixture(scope="module")
-def cfg() -> Config:
-    return Config().updated({"model.threads": 1, "model.max_epochs": 15})
+def cfg() -> Settings:
+    return Settings().updated({"model.threads": 1, "model.max_epochs": 15})
 
 
 def test_per_user_beats_plain_for_every_group_and_survives_save_load(world, cfg, tmp_path) -> None:
     organic, probe, test = world
-    plain = fit(organic, probe, cfg.scale, cfg.model, cfg.updated({"debias.method": "plain"}).debias)
-    res = fit(organic, probe, cfg.scale, cfg.model, cfg.debias)         # default: per_user, skew_affine
+    plain = fit(organic, probe, cfg.updated({"debias.method": "plain"}))
+    res = fit(organic, probe, cfg)         # default: per_user, skew_affine
     ck = res.checkpoint
     assert ck.method == "per_user" and ck.info["per_user"]["design"] == "skew_affine"
     lo, hi = SCALE_RANGE
@@ -133,10 +134,10 @@ def test_per_user_beats_plain_for_every_group_and_survives_save_load(world, cfg,
 
 def test_few_probe_ratings_fall_back_to_the_offset_design(world, cfg) -> None:
     organic, probe, _ = world
-    res = fit(organic, probe.iloc[:12], cfg.scale, cfg.model, cfg.debias)
+    res = fit(organic, probe.iloc[:12], cfg)
     assert res.checkpoint.info["per_user"]["design"] == "offset"
     assert any("per_user_min_probes" in n for n in res.notes)
-    none = fit(organic, probe.iloc[:0], cfg.scale, cfg.model, cfg.debias)
+    none = fit(organic, probe.iloc[:0], cfg)
     assert any("no probe ratings" in n for n in none.notes)
     assert np.all(none.checkpoint.user_offset == 0)
 

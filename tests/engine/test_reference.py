@@ -7,8 +7,8 @@ import pandas as pd
 import pytest
 from synthetic import mnar_logs
 
-from tasks.config import Config
 from tasks.engine.reference import draw_reference_users, probe_errors, reference_probabilities
+from tasks.engine.settings import Settings
 from tasks.engine.trainer import fit
 
 
@@ -60,9 +60,9 @@ def test_reference_draws_are_sorted_indices_and_differ_between_rounds() -> None:
 
 def test_fit_resamples_references_and_records_their_share() -> None:
     logs = mnar_logs(n_users=120, n_items=40, per_user=10, probe_users=100, probes_per_user=4, seed=5)
-    cfg = Config().updated({"debias.method": "calibrated", "model.max_epochs": 5, "model.patience": 10,
-                            "model.batch_size": 256, "debias.reference_temperature": 1.0})
-    res = fit(logs.organic, logs.probe, cfg.scale, cfg.model, cfg.debias)
+    cfg = Settings().updated({"debias.method": "calibrated", "model.max_epochs": 5, "model.patience": 10,
+                              "model.batch_size": 256, "debias.reference_temperature": 1.0})
+    res = fit(logs.organic, logs.probe, cfg)
     n_with_error = res.probe_fit["user_id"].nunique()
     for r in res.rounds:
         assert r["reference_share"] == pytest.approx(r["reference_users"] / n_with_error)

@@ -9,9 +9,9 @@ import torch
 from torch import nn
 
 from synthetic import mnar_logs
-from tasks.config import Config
 from tasks.engine.reference import cap_reference_users
 from tasks.engine.row_adam import RowAdam
+from tasks.engine.settings import Settings
 from tasks.engine.trainer import fit
 
 
@@ -122,8 +122,8 @@ def test_reference_cap_is_a_uniform_sample():
 
 def test_trainer_applies_the_cap_and_says_so():
     logs = mnar_logs(n_users=300, n_items=60, probe_users=250, probes_per_user=6, seed=2)
-    cfg = Config().updated({"debias.method": "calibrated", "model.max_epochs": 3, "model.dim": 4,
-                            "debias.max_reference_users": 5, "debias.reference_p_min": 0.5})
-    res = fit(logs.organic, logs.probe, cfg.scale, cfg.model, cfg.debias)
+    cfg = Settings().updated({"debias.method": "calibrated", "model.max_epochs": 3, "model.dim": 4,
+                              "debias.max_reference_users": 5, "debias.reference_p_min": 0.5})
+    res = fit(logs.organic, logs.probe, cfg)
     assert all(r["reference_users"] == 5 for r in res.rounds)
     assert any("capped at 5" in n for n in res.notes)
