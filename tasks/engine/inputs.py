@@ -76,9 +76,12 @@ def prepare_model(organic: pd.DataFrame, probe: pd.DataFrame, model_cfg: ModelSe
     return users, items, new_users, new_items, model, model_cfg.max_epochs
 
 
-def _levels(scale: Scale) -> np.ndarray:
-    """Rating levels for the propensity histograms; 9 even bins on a continuous scale."""
-    return np.asarray(scale.levels if scale.step > 0 else np.linspace(scale.min, scale.max, 9), float)
+def rating_levels(scale: Scale) -> np.ndarray:
+    """Rating levels for the propensity histograms, ``[L]``: ``min, min + step, ..., max``; 9 evenly spaced
+    levels on a continuous scale (``step`` 0)."""
+    if scale.step <= 0:
+        return np.linspace(scale.min, scale.max, 9)
+    return scale.min + np.arange(round((scale.max - scale.min) / scale.step) + 1) * scale.step
 
 
 def training_examples(organic: pd.DataFrame, users: IdMap, items: IdMap, pf_u: np.ndarray, pf_i: np.ndarray,
@@ -98,8 +101,8 @@ def training_examples(organic: pd.DataFrame, users: IdMap, items: IdMap, pf_u: n
             notes.append(f"{weighting}: no probe ratings to estimate P(r); trained unweighted this time")
         else:
             share = len(organic) / (len(users) * len(items))
-            prop = naive_bayes_propensity(tr_r, pf_r, _levels(scale), share)
-            tr_w = rating_weights(tr_r, _levels(scale), prop, debias.propensity_clip)
+            prop = naive_bayes_propensity(tr_r, pf_r, rating_levels(scale), share)
+            tr_w = rating_weights(tr_r, rating_levels(scale), prop, debias.propensity_clip)
     if "probe_upweight" in (method, companion):
         tr_u, tr_i = np.concatenate([tr_u, pf_u]), np.concatenate([tr_i, pf_i])
         tr_r = np.concatenate([tr_r, pf_r])

@@ -30,14 +30,6 @@ class Scale:
     max: float = 5.0
     step: float = 1.0
 
-    @property
-    def levels(self) -> list[float]:
-        """Allowed rating values when a step is set (else the two ends)."""
-        if self.step <= 0:
-            return [self.min, self.max]
-        n = int(round((self.max - self.min) / self.step))
-        return [self.min + k * self.step for k in range(n + 1)]
-
 
 @dataclass(frozen=True)
 class ModelSettings:
