@@ -1,4 +1,4 @@
-"""Probe error (shrunk per-user probe MAE) and reference-user sampling."""
+"""Probe error (shrunk per-user probe MAE), reference-user sampling and the cap on reference users per round."""
 
 from __future__ import annotations
 
@@ -7,7 +7,7 @@ import pandas as pd
 import pytest
 from synthetic import mnar_logs
 
-from tasks.engine.reference import draw_reference_users, probe_errors, reference_probabilities
+from tasks.engine.reference import cap_reference_users, draw_reference_users, probe_errors, reference_probabilities
 from tasks.engine.settings import Settings
 from tasks.engine.trainer import fit
 
@@ -72,3 +72,24 @@ def test_fit_resamples_references_and_records_their_share() -> None:
     assert len(set(counts)) > 1, counts                # a fixed set would give the same count every round
     # Probe errors reported per user id, only for users with fitting-split probe ratings.
     assert set(res.probe_errors.index) == set(res.probe_fit["user_id"])
+
+
+def test_reference_cap_leaves_small_rounds_alone():
+    rng = np.random.default_rng(0)
+    drawn = np.array([3, 8, 11])
+    state = rng.bit_generator.state
+    assert cap_reference_users(drawn, 3, rng) is drawn
+    assert cap_reference_users(drawn, 0, rng) is drawn           # 0 = no cap
+    assert rng.bit_generator.state == state                       # nothing drawn: rounds as without a cap
+
+
+def test_reference_cap_is_a_uniform_sample():
+    rng = np.random.default_rng(1)
+    drawn = np.arange(100, 110)
+    hits = np.zeros(10)
+    for _ in range(3000):
+        kept = cap_reference_users(drawn, 3, rng)
+        assert len(kept) == 3 and len(set(kept)) == 3 and np.all(np.diff(kept) > 0) and set(kept) <= set(drawn)
+        hits[kept - 100] += 1
+    # Each user kept with chance 3/10; binomial sd over 3000 rounds is 0.0084 (common practice, no source: 4 sd).
+    assert np.all(np.abs(hits / 3000 - 0.3) < 4 * 0.0084)

@@ -19,20 +19,6 @@ ROUND_KEYS = {"epoch", "reference_users", "reference_share", "adjusted_users", "
               "calibration_term", "val_mae", "seconds"}
 
 
-def test_heldout_split_is_a_function_of_the_pair() -> None:
-    rng = np.random.default_rng(0)
-    users = np.array([f"member-{k:06d}" for k in rng.integers(0, 5000, 20_000)], dtype=object)
-    items = np.array([f"title-{k:06d}" for k in rng.integers(0, 5000, 20_000)], dtype=object)
-    held = heldout_mask(users, items, 0.3)
-    order = rng.permutation(len(users))
-    assert np.array_equal(heldout_mask(users[order], items[order], 0.3), held[order])   # row order irrelevant
-    assert np.array_equal(heldout_mask(list(users[:50]), list(items[:50]), 0.3), held[:50])  # any sequence
-    # Share close to configured: within 4 binomial standard errors (normal approximation).
-    assert abs(held.mean() - 0.3) <= 4 * np.sqrt(0.3 * 0.7 / len(held))
-    with pytest.raises(ValueError, match="share"):
-        heldout_mask(users, items, 1.0)
-
-
 def test_heldout_probe_ratings_never_influence_training() -> None:
     logs = mnar_logs(n_users=80, n_items=40, per_user=8, probe_users=60, seed=11)
     cfg = Settings().updated({"debias.method": "calibrated", "model.max_epochs": 3, "model.batch_size": 256})
@@ -122,3 +108,12 @@ def test_all_item_profiles_fall_back_to_a_sample_over_the_memory_budget() -> Non
     res = fit(logs.organic, logs.probe, cfg)
     assert any("exceeds memory_budget_mb; sampling 8 items" in n for n in res.notes), res.notes
     assert all(r["calibration"] == "on" and np.isfinite(r["calibration_term"]) for r in res.rounds)
+
+
+def test_trainer_applies_the_cap_and_says_so():
+    logs = mnar_logs(n_users=300, n_items=60, probe_users=250, probes_per_user=6, seed=2)
+    cfg = Settings().updated({"debias.method": "calibrated", "model.max_epochs": 3, "model.dim": 4,
+                              "debias.max_reference_users": 5, "debias.reference_p_min": 0.5})
+    res = fit(logs.organic, logs.probe, cfg)
+    assert all(r["reference_users"] == 5 for r in res.rounds)
+    assert any("capped at 5" in n for n in res.notes)
