@@ -139,6 +139,7 @@ def run_case(size: str, method: str, epochs: int, overrides: dict, data_dir: Pat
 
     from tasks.config import Config
     from tasks.engine.trainer import fit
+    from tasks.train.settings import engine_settings
 
     torch.set_num_threads(1)
     # Read the logs the parent generated: generation's temporary arrays would otherwise set the peak.
@@ -156,8 +157,7 @@ def run_case(size: str, method: str, epochs: int, overrides: dict, data_dir: Pat
     t0 = time.perf_counter()
     cpu_start = time.process_time()
     with _RssSampler() as rss:
-        res = fit(organic, probe, cfg.scale, cfg.model, cfg.debias,
-                  log=lambda _m: cpu_marks.append(time.process_time()))
+        res = fit(organic, probe, engine_settings(cfg), log=lambda _m: cpu_marks.append(time.process_time()))
     total = time.perf_counter() - t0
     secs = [r["seconds"] for r in res.rounds]
     cpu = np.diff(cpu_marks) if len(cpu_marks) > 1 else np.array([cpu_marks[0] - cpu_start])

@@ -5,7 +5,7 @@ rating per user, item and source, as the store keeps it), writes it as one Parqu
 same config three ways, each in fresh processes, and reads seconds per round and held-out probe MAE:
 
 * ``single``: ``tasks.engine.trainer.fit`` in one process (via ``torchrun --nproc-per-node 1``, i.e. the
-  data-parallel trainer with one worker, which reproduces ``fit`` exactly; tests/test_distributed.py);
+  data-parallel trainer with one worker, which reproduces ``fit`` exactly; tests/engine/test_distributed.py);
 * ``2 workers``: ``torchrun --nproc-per-node 2``, the same objective (global batch = ``model.batch_size``);
 * ``2 workers, batch per worker``: each worker takes ``model.batch_size`` ratings per step (half the steps).
 
@@ -44,7 +44,7 @@ def window_parquet(logs: Path, dest: Path) -> int:
 
 def run(ratings: Path, cfg: Path, workers: int, per_worker: bool, out: Path) -> dict:
     cmd = [sys.executable, "-m", "torch.distributed.run", "--standalone", "--nproc-per-node", str(workers),
-           "-m", "tasks.engine.distributed", "--ratings", str(ratings), "--config", str(cfg), "--out", str(out)]
+           "-m", "tasks.train.torchrun", "--ratings", str(ratings), "--config", str(cfg), "--out", str(out)]
     if per_worker:
         cmd.append("--batch-per-worker")
     env = {**os.environ, "OMP_NUM_THREADS": "1", "PYTHONPATH": str(ROOT)}

@@ -63,6 +63,7 @@ if str(ROOT) not in sys.path:
 from tasks.config import Config  # noqa: E402
 from tasks.engine.metrics import mae, rmse  # noqa: E402
 from tasks.engine.trainer import fit  # noqa: E402
+from tasks.train.settings import engine_settings  # noqa: E402
 
 GROUPS = ("lover", "hater", "random", "published")
 BFI_SCALE = {"scale.min": 1.0, "scale.max": 6.0, "scale.step": 1.0}
@@ -251,7 +252,7 @@ def run_method(scn: Scenario, log: str, overrides: dict, seed: int, base: Config
         epochs = 0
     else:
         train = scn.organic if log == "organic" else scn.oracle
-        res = fit(train, scn.probe, cfg.scale, cfg.model, cfg.debias)
+        res = fit(train, scn.probe, engine_settings(cfg))
         pred, _ = res.checkpoint.score(scn.test_user, scn.test_item)
         epochs = len(res.rounds)
     out = {"mae": mae(pred, scn.test_rating), "rmse": rmse(pred, scn.test_rating),
@@ -313,7 +314,7 @@ def run_insteval(seed: int, methods: list[str], probe_share: float = 0.05, test_
     for method in methods:
         cfg = base.updated({"model.seed": seed, **({} if method == "default" else {"debias.method": method})})
         t0 = time.perf_counter()
-        res = fit(organic, probe, cfg.scale, cfg.model, cfg.debias)
+        res = fit(organic, probe, engine_settings(cfg))
         pred, flag = res.checkpoint.score(test["user_id"].to_numpy(), test["item_id"].to_numpy())
         y = test["rating"].to_numpy()
         rows.append({"seed": seed, "method": method, "mae": mae(pred, y), "rmse": rmse(pred, y),

@@ -50,7 +50,7 @@ class _SoftNearestDistance(torch.autograd.Function):
     Distances come from :func:`pairwise_distance` (float64 Gram expansion, see there); the last line is
     assembled in float64 too, because ``F sum h`` and ``h G`` nearly cancel when F sits close to its
     references. Checked against autograd of the plain formula and by ``torch.autograd.gradcheck``
-    (tests/test_engine_calibration.py).
+    (tests/engine/test_calibration.py).
     """
 
     @staticmethod

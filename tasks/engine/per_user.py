@@ -36,8 +36,8 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from tasks.config import DebiasConfig, ScaleConfig
 from tasks.engine.recalibration import MonotoneMap
+from tasks.engine.settings import DebiasSettings, Scale
 from tasks.engine.skew_model import FEATURE_NAMES, fit_ridge, standardise, user_features, user_mean_prediction
 
 #: Clip of the per-user slope. An upper clip of 2 cost 24 points of gap closed under strong selection on
@@ -87,8 +87,8 @@ def _own_update(n_users: int, u: np.ndarray, resid: np.ndarray, prior: float) ->
     return sums / (counts + m), m, facts
 
 
-def fit_correction(ckpt, organic: pd.DataFrame, probe_fit: pd.DataFrame, debias: DebiasConfig,
-                   scale: ScaleConfig) -> PerUserCorrection:
+def fit_correction(ckpt, organic: pd.DataFrame, probe_fit: pd.DataFrame, debias: DebiasSettings,
+                   scale: Scale) -> PerUserCorrection:
     """Fit the per-user correction of ``ckpt`` (a trained checkpoint) on the probe fitting split."""
     n_users = len(ckpt.users)
     design = debias.per_user_design

@@ -41,7 +41,7 @@ class _SoftCdf(torch.autograd.Function):
     The [U, K, S] block is the calibration term's main cost; autograd's generic backward makes about
     twice as many passes over it (mean, negation and broadcast reductions each materialise it). Here:
     forward = broadcast-subtract, in-place sigmoid, mean; backward = one fused sigmoid_backward and one
-    sum over K. Checked by ``torch.autograd.gradcheck`` in tests/test_engine_calibration.py.
+    sum over K. Checked by ``torch.autograd.gradcheck`` in tests/engine/test_calibration.py.
     """
 
     @staticmethod

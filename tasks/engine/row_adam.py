@@ -4,7 +4,7 @@ The update is the one of ``torch.optim.SparseAdam`` ("lazy" Adam: only the rows 
 their moments decay only when touched), computed with the same float operations in the same order. The
 one difference in arithmetic: a row repeated within a step has its gradient entries summed left to right
 (``index_add_``), where SparseAdam's ``coalesce`` sums them in another order; so the two agree bit for bit
-when no row repeats, and to float rounding otherwise (tests/test_engine_scale.py: ~6e-8 on weights ~0.1
+when no row repeats, and to float rounding otherwise (tests/engine/test_row_adam.py: ~6e-8 on weights ~0.1
 after 60 steps). The difference is how: SparseAdam updates its dense moment buffers through
 sparse-tensor arithmetic (``sparse_mask``, dense-plus-sparse ``add_``); here the touched rows are read
 with ``index_select`` and written with ``index_add_``, and tables looked up with the same indices (a

@@ -12,6 +12,7 @@ from tasks.config import Config
 from tasks.engine.checkpoint import Checkpoint
 from tasks.engine.trainer import FitResult, fit
 from tasks.schemas import ORGANIC, PROBE
+from tasks.train.settings import engine_settings
 
 
 @dataclass
@@ -29,9 +30,10 @@ def split_sources(window: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
 def train_night(window: pd.DataFrame, cfg: Config, base: Checkpoint | None, base_shadow: Checkpoint | None,
                 log=None) -> TrainedNight:
     organic, probe = split_sources(window)
-    candidate = fit(organic, probe, cfg.scale, cfg.model, cfg.debias, previous=base, log=log)
+    settings = engine_settings(cfg)
+    candidate = fit(organic, probe, settings, previous=base, log=log)
     shadow = None
     if cfg.runtime.shadow:
-        plain = cfg.debias.model_copy(update={"method": "plain", "combine_with": "none"})
-        shadow = fit(organic, probe, cfg.scale, cfg.model, plain, previous=base_shadow, log=None)
+        plain = settings.updated({"debias.method": "plain", "debias.combine_with": "none"})
+        shadow = fit(organic, probe, plain, previous=base_shadow, log=None)
     return TrainedNight(candidate=candidate, shadow=shadow)

@@ -12,6 +12,7 @@ import torch
 from synthetic import mnar_logs
 
 from tasks.config import Config, ConfigError, parse_config
+from tasks.engine.settings import Settings
 from tasks.engine.trainer import EngineInputError, fit
 
 torch.set_num_threads(1)
@@ -19,13 +20,9 @@ torch.set_num_threads(1)
 EMPTY = pd.DataFrame(columns=["user_id", "item_id", "rating"])
 
 
-def _cfg(**dotted: object) -> Config:
-    return Config().updated({"model.max_epochs": 2, "model.batch_size": 64, **dotted})
-
-
-def _fit(organic: pd.DataFrame, probe: pd.DataFrame | None = None, **dotted: object):
-    cfg = _cfg(**dotted)
-    return fit(organic, probe, cfg.scale, cfg.model, cfg.debias)
+def _fit(organic: pd.DataFrame, probe: pd.DataFrame | None = None, **debias: object):
+    return fit(organic, probe, Settings().updated({"model.max_epochs": 2, "model.batch_size": 64,
+                                                   **{f"debias.{k}": v for k, v in debias.items()}}))
 
 
 def _finite_model(res) -> bool:
@@ -116,7 +113,7 @@ def test_single_user_trains_to_a_finite_model() -> None:
     probe = pd.DataFrame({"user_id": ["member-000001"] * 4, "item_id": [f"title-{k:06d}" for k in range(6, 10)],
                           "rating": [3.0, 4.0, 2.0, 5.0]})
     for method in ("calibrated", "plain", "ips", "recalibrate", "per_user"):
-        res = _fit(organic, probe, **{"debias.method": method})
+        res = _fit(organic, probe, method=method)
         assert _finite_model(res), method
         s, _ = res.checkpoint.score(["member-000001"], ["title-000003"])
         assert np.isfinite(s).all() and 1 <= s[0] <= 5
@@ -130,7 +127,7 @@ def test_all_ratings_equal_gives_that_rating() -> None:
     organic["rating"] = 4.0
     probe["rating"] = 4.0
     for method in ("calibrated", "ips", "snips", "recalibrate", "per_user"):
-        res = _fit(organic, probe, **{"debias.method": method})
+        res = _fit(organic, probe, method=method)
         assert _finite_model(res), method
         s, _ = res.checkpoint.score(organic["user_id"], organic["item_id"])
         np.testing.assert_allclose(s, 4.0, atol=0.2, err_msg=method)
@@ -138,7 +135,7 @@ def test_all_ratings_equal_gives_that_rating() -> None:
 
 def test_ips_without_probe_ratings_trains_unweighted_and_says_so() -> None:
     organic, _ = _small()
-    res = _fit(organic, None, **{"debias.method": "ips"})
+    res = _fit(organic, None, method="ips")
     assert any("no probe ratings to estimate P(r)" in n for n in res.notes)
     assert _finite_model(res)
 
@@ -146,5 +143,4 @@ def test_ips_without_probe_ratings_trains_unweighted_and_says_so() -> None:
 def test_divergence_is_an_error_not_a_nan_model() -> None:
     organic, probe = _small()
     with pytest.raises(FloatingPointError, match="diverged at round 1"):
-        _fit(organic, probe, **{"debias.method": "calibrated", "debias.calibration_weight": 1e39,
-                                "debias.reference_p_min": 0.5})
+        _fit(organic, probe, method="calibrated", calibration_weight=1e39, reference_p_min=0.5)

@@ -7,9 +7,9 @@ import pytest
 import torch
 from synthetic import mnar_logs
 
-from tasks.config import Config
 from tasks.engine.calibration import DIST_FLOOR, calibration_term, calibration_term_per_user, pairwise_distance
 from tasks.engine.profiles import soft_cdf, thresholds
+from tasks.engine.settings import Settings
 from tasks.engine.trainer import fit
 
 torch.set_num_threads(1)
@@ -126,9 +126,9 @@ def test_term_is_vectorised_over_users() -> None:
 
 def _fit_rounds(**debias: object):
     logs = mnar_logs(n_users=60, n_items=30, per_user=8, probe_users=40, probes_per_user=4, seed=2)
-    cfg = Config().updated({"debias.method": "calibrated", "model.max_epochs": 2, "model.batch_size": 128,
-                            **{f"debias.{k}": v for k, v in debias.items()}})
-    return fit(logs.organic, logs.probe, cfg.scale, cfg.model, cfg.debias), logs
+    cfg = Settings().updated({"debias.method": "calibrated", "model.max_epochs": 2, "model.batch_size": 128,
+                              **{f"debias.{k}": v for k, v in debias.items()}})
+    return fit(logs.organic, logs.probe, cfg), logs
 
 
 def test_round_says_skipped_when_no_reference_users() -> None:
@@ -141,10 +141,10 @@ def test_round_says_skipped_when_no_reference_users() -> None:
 def test_round_skips_when_every_user_is_a_reference_user() -> None:
     # Every member has a probe rating here, and p = 1 for all: nobody is left to adjust.
     logs = mnar_logs(n_users=40, n_items=30, per_user=8, probe_users=40, probes_per_user=6, seed=3)
-    cfg = Config().updated({"debias.method": "calibrated", "model.max_epochs": 2, "model.batch_size": 128,
-                            "debias.reference_p_min": 1.0, "debias.reference_p_max": 1.0,
-                            "debias.heldout_share": 0.01})
-    res = fit(logs.organic, logs.probe, cfg.scale, cfg.model, cfg.debias)
+    cfg = Settings().updated({"debias.method": "calibrated", "model.max_epochs": 2, "model.batch_size": 128,
+                              "debias.reference_p_min": 1.0, "debias.reference_p_max": 1.0,
+                              "debias.heldout_share": 0.01})
+    res = fit(logs.organic, logs.probe, cfg)
     assert res.probe_fit["user_id"].nunique() == 40      # setup: every member kept a fitting probe rating
     assert [r["calibration"] for r in res.rounds] == ["skipped: every active user is a reference user"] * 2
     assert all(r["reference_share"] == 1.0 and r["adjusted_users"] == 0 for r in res.rounds)

@@ -9,8 +9,8 @@ import pytest
 import torch
 from synthetic import mnar_logs
 
-from tasks.config import Config
 from tasks.engine.checkpoint import Checkpoint
+from tasks.engine.settings import Settings
 from tasks.engine.trainer import fit
 
 
@@ -23,10 +23,10 @@ def _restore_threads() -> Iterator[None]:
 
 def _run(threads: int, seed: int = 7, method: str = "calibrated"):
     logs = mnar_logs(n_users=90, n_items=40, per_user=10, probe_users=70, seed=21)
-    cfg = Config().updated({"debias.method": method, "model.max_epochs": 3, "model.batch_size": 128,
-                            "model.threads": threads, "model.seed": seed, "debias.combine_with": "ips",
-                            "debias.probe_target_weight": 0.3})
-    return fit(logs.organic, logs.probe, cfg.scale, cfg.model, cfg.debias)
+    cfg = Settings().updated({"debias.method": method, "model.max_epochs": 3, "model.batch_size": 128,
+                              "model.threads": threads, "model.seed": seed, "debias.combine_with": "ips",
+                              "debias.probe_target_weight": 0.3})
+    return fit(logs.organic, logs.probe, cfg)
 
 
 def _same_state(a, b) -> bool:

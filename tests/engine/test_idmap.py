@@ -10,9 +10,9 @@ import pytest
 import torch
 from synthetic import mnar_logs, random_biased_mf
 
-from tasks.config import Config
 from tasks.engine.checkpoint import Checkpoint
 from tasks.engine.idmap import IdMap
+from tasks.engine.settings import Settings
 from tasks.engine.trainer import fit
 
 torch.set_num_threads(1)
@@ -65,15 +65,15 @@ def test_grow_keeps_old_rows_and_initialises_new_ones() -> None:
 
 def test_warm_start_appends_new_ids_and_fine_tunes_a_bounded_number_of_epochs(tmp_path: Path) -> None:
     logs = mnar_logs(n_users=80, n_items=40, per_user=8, probe_users=50, seed=7)
-    cfg = Config().updated({"debias.method": "plain", "model.max_epochs": 3, "model.finetune_epochs": 2,
-                            "model.patience": 10, "model.batch_size": 256})
+    cfg = Settings().updated({"debias.method": "plain", "model.max_epochs": 3, "model.finetune_epochs": 2,
+                              "model.patience": 10, "model.batch_size": 256})
     night1 = logs.organic[logs.organic["user_id"] < "member-000060"]
-    first = fit(night1, logs.probe.iloc[:0], cfg.scale, cfg.model, cfg.debias)
+    first = fit(night1, logs.probe.iloc[:0], cfg)
     first.checkpoint.save(tmp_path / "ckpt")
     previous = Checkpoint.load(tmp_path / "ckpt")
     old_users, old_items = list(previous.users.ids), list(previous.items.ids)
 
-    second = fit(logs.organic, logs.probe, cfg.scale, cfg.model, cfg.debias, previous=previous)
+    second = fit(logs.organic, logs.probe, cfg, previous=previous)
     users, items = list(second.checkpoint.users.ids), list(second.checkpoint.items.ids)
     assert users[:len(old_users)] == old_users and items[:len(old_items)] == old_items
     assert second.new_users == len(users) - len(old_users) == 20

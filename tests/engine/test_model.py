@@ -6,10 +6,10 @@ import numpy as np
 import pandas as pd
 import torch
 from scipy.optimize import check_grad, minimize
-from synthetic import mnar_logs, random_biased_mf
+from synthetic import random_biased_mf
 
-from tasks.config import Config
 from tasks.engine.model import BiasedMF, build_model
+from tasks.engine.settings import Settings
 from tasks.engine.trainer import fit
 
 torch.set_num_threads(1)
@@ -106,9 +106,9 @@ def test_trained_mf_reaches_the_lbfgs_objective() -> None:
     organic = pd.DataFrame({"user_id": [f"member-{u:06d}" for u in uu], "item_id": [f"title-{i:06d}" for i in ii],
                             "rating": r})
     # Full batch (one step per epoch = exact gradient), no probe ratings (so no early stopping).
-    cfg = Config().updated({"debias.method": "plain", "model.batch_size": len(r), "model.max_epochs": 400,
-                            "model.learning_rate": 0.05, "model.dim": D, "model.weight_decay": WD})
-    res = fit(organic, None, cfg.scale, cfg.model, cfg.debias)
+    cfg = Settings().updated({"debias.method": "plain", "model.batch_size": len(r), "model.max_epochs": 400,
+                              "model.learning_rate": 0.05, "model.dim": D, "model.weight_decay": WD})
+    res = fit(organic, None, cfg)
     ck = res.checkpoint
     m = ck.model
     um = ck.users.lookup([f"member-{u:06d}" for u in range(U)])
@@ -133,23 +133,3 @@ def test_ranking_block_plus_user_constant_is_the_block() -> None:
         part, const = m.ranking_block(users, items)
         assert const.shape == (3,)
         torch.testing.assert_close(part + const.view(-1, 1), m.predict_block(users, items))
-
-
-def test_top_n_matches_brute_force_over_every_unrated_item() -> None:
-    from tasks.engine.scoring import top_n
-    logs = mnar_logs(n_users=40, n_items=30, per_user=6, probe_users=20, probes_per_user=3, seed=6)
-    cfg = Config().updated({"debias.method": "per_user", "model.max_epochs": 3})
-    ckpt = fit(logs.organic, logs.probe, cfg.scale, cfg.model, cfg.debias).checkpoint
-    ex_u, ex_i = ckpt.users.lookup(logs.organic["user_id"]), ckpt.items.lookup(logs.organic["item_id"])
-    users = np.array([0, 7, 13, 39])
-    got_u, got_i, got_s, got_r = top_n(ckpt, users, ex_u, ex_i, n=5, budget_bytes=8 * 30 * 3)  # blocks of 3 users
-    rated = set(zip(ex_u.tolist(), ex_i.tolist()))
-    for u in users:
-        # Reference: a plain loop scoring every unrated item with Checkpoint.score_idx and sorting.
-        cand = np.array([i for i in range(len(ckpt.items)) if (u, i) not in rated])
-        full = ckpt.score_idx(np.full(len(cand), u), cand)
-        best = cand[np.argsort(-full, kind="stable")[:5]]
-        mine = got_i[got_u == u]
-        assert np.array_equal(got_r[got_u == u], np.arange(1, len(mine) + 1))
-        np.testing.assert_allclose(got_s[got_u == u], np.sort(full)[::-1][:5], rtol=0, atol=1e-5)
-        assert set(mine) == set(best) or np.allclose(np.sort(full)[::-1][4], np.sort(full)[::-1][5], atol=1e-5)

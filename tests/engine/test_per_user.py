@@ -1,5 +1,5 @@
-"""Per-user debiasing: skew model (ridge with leave-one-out choice), empirical-Bayes shrinkage, and the
-per-user correction end to end through ``trainer.fit`` and a saved checkpoint."""
+"""Per-user debiasing: empirical-Bayes shrinkage and the per-user correction end to end through
+``trainer.fit`` and a saved checkpoint. (The skew model's ridge: tests/engine/test_skew_model.py.)"""
 
 from __future__ import annotations
 
@@ -11,48 +11,10 @@ import torch
 from tasks.config import Config, ConfigError
 from tasks.engine.checkpoint import Checkpoint
 from tasks.engine.per_user import SCALE_RANGE, shrinkage_strength
-from tasks.engine.skew_model import fit_ridge
+from tasks.engine.settings import Settings
 from tasks.engine.trainer import fit
 
 torch.set_num_threads(1)
-
-
-def test_ridge_without_penalty_matches_least_squares() -> None:
-    rng = np.random.default_rng(0)
-    X = np.hstack([np.ones((200, 1)), rng.normal(size=(200, 4))])
-    y = X @ np.array([0.5, 1.0, -2.0, 0.0, 0.3]) + rng.normal(0, 0.1, 200)
-    got = fit_ridge(X, y, grid=(1e-14,))
-    # Reference: numpy.linalg.lstsq (ordinary least squares).
-    ref = np.linalg.lstsq(X, y, rcond=None)[0]
-    np.testing.assert_allclose(got.coef, ref, atol=1e-8)
-
-
-def test_ridge_leave_one_out_error_matches_refitting() -> None:
-    rng = np.random.default_rng(1)
-    X = np.hstack([np.ones((40, 1)), rng.normal(size=(40, 3))])
-    y = X @ np.array([1.0, 0.5, 0.0, -0.5]) + rng.normal(0, 0.5, 40)
-    rel = 0.1
-    got = fit_ridge(X, y, grid=(rel,))
-    # Reference: the definition of leave-one-out error, by refitting the same ridge 40 times.
-    lam = rel * len(y)   # the strength the closed form used for the full data
-    pen = np.eye(4)
-    pen[0, 0] = 0
-    errs = []
-    for k in range(len(y)):
-        keep = np.arange(len(y)) != k
-        coef = np.linalg.solve(X[keep].T @ X[keep] + lam * pen, X[keep].T @ y[keep])
-        errs.append((y[k] - X[k] @ coef) ** 2)
-    assert got.loo_mse == pytest.approx(float(np.mean(errs)), rel=1e-9)
-
-
-def test_ridge_falls_back_to_a_constant_when_features_carry_nothing() -> None:
-    rng = np.random.default_rng(2)
-    X = np.hstack([np.ones((12, 1)), rng.normal(size=(12, 8))])
-    y = rng.normal(0.3, 1.0, 12)                 # independent of X, few rows, many features
-    got = fit_ridge(X, y)
-    pred = got.predict(X)
-    assert np.ptp(pred) < 0.35 * np.std(y)       # nearly flat: leave-one-out error chose heavy shrinkage
-    assert pred.mean() == pytest.approx(y.mean(), abs=0.1)
 
 
 def test_shrinkage_strength_recovers_known_variances() -> None:
@@ -103,14 +65,14 @@ def world():
 
 
 @pytest.fixture(scope="module")
-def cfg() -> Config:
-    return Config().updated({"model.threads": 1, "model.max_epochs": 15})
+def cfg() -> Settings:
+    return Settings().updated({"model.threads": 1, "model.max_epochs": 15})
 
 
 def test_per_user_beats_plain_for_every_group_and_survives_save_load(world, cfg, tmp_path) -> None:
     organic, probe, test = world
-    plain = fit(organic, probe, cfg.scale, cfg.model, cfg.updated({"debias.method": "plain"}).debias)
-    res = fit(organic, probe, cfg.scale, cfg.model, cfg.debias)         # default: per_user, skew_affine
+    plain = fit(organic, probe, cfg.updated({"debias.method": "plain"}))
+    res = fit(organic, probe, cfg)         # default: per_user, skew_affine
     ck = res.checkpoint
     assert ck.method == "per_user" and ck.info["per_user"]["design"] == "skew_affine"
     lo, hi = SCALE_RANGE
@@ -133,10 +95,10 @@ def test_per_user_beats_plain_for_every_group_and_survives_save_load(world, cfg,
 
 def test_few_probe_ratings_fall_back_to_the_offset_design(world, cfg) -> None:
     organic, probe, _ = world
-    res = fit(organic, probe.iloc[:12], cfg.scale, cfg.model, cfg.debias)
+    res = fit(organic, probe.iloc[:12], cfg)
     assert res.checkpoint.info["per_user"]["design"] == "offset"
     assert any("per_user_min_probes" in n for n in res.notes)
-    none = fit(organic, probe.iloc[:0], cfg.scale, cfg.model, cfg.debias)
+    none = fit(organic, probe.iloc[:0], cfg)
     assert any("no probe ratings" in n for n in none.notes)
     assert np.all(none.checkpoint.user_offset == 0)
 

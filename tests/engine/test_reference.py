@@ -1,4 +1,4 @@
-"""Probe error (shrunk per-user probe MAE) and reference-user sampling."""
+"""Probe error (shrunk per-user probe MAE), reference-user sampling and the cap on reference users per round."""
 
 from __future__ import annotations
 
@@ -7,8 +7,8 @@ import pandas as pd
 import pytest
 from synthetic import mnar_logs
 
-from tasks.config import Config
-from tasks.engine.reference import draw_reference_users, probe_errors, reference_probabilities
+from tasks.engine.reference import cap_reference_users, draw_reference_users, probe_errors, reference_probabilities
+from tasks.engine.settings import Settings
 from tasks.engine.trainer import fit
 
 
@@ -60,9 +60,9 @@ def test_reference_draws_are_sorted_indices_and_differ_between_rounds() -> None:
 
 def test_fit_resamples_references_and_records_their_share() -> None:
     logs = mnar_logs(n_users=120, n_items=40, per_user=10, probe_users=100, probes_per_user=4, seed=5)
-    cfg = Config().updated({"debias.method": "calibrated", "model.max_epochs": 5, "model.patience": 10,
-                            "model.batch_size": 256, "debias.reference_temperature": 1.0})
-    res = fit(logs.organic, logs.probe, cfg.scale, cfg.model, cfg.debias)
+    cfg = Settings().updated({"debias.method": "calibrated", "model.max_epochs": 5, "model.patience": 10,
+                              "model.batch_size": 256, "debias.reference_temperature": 1.0})
+    res = fit(logs.organic, logs.probe, cfg)
     n_with_error = res.probe_fit["user_id"].nunique()
     for r in res.rounds:
         assert r["reference_share"] == pytest.approx(r["reference_users"] / n_with_error)
@@ -72,3 +72,24 @@ def test_fit_resamples_references_and_records_their_share() -> None:
     assert len(set(counts)) > 1, counts                # a fixed set would give the same count every round
     # Probe errors reported per user id, only for users with fitting-split probe ratings.
     assert set(res.probe_errors.index) == set(res.probe_fit["user_id"])
+
+
+def test_reference_cap_leaves_small_rounds_alone():
+    rng = np.random.default_rng(0)
+    drawn = np.array([3, 8, 11])
+    state = rng.bit_generator.state
+    assert cap_reference_users(drawn, 3, rng) is drawn
+    assert cap_reference_users(drawn, 0, rng) is drawn           # 0 = no cap
+    assert rng.bit_generator.state == state                       # nothing drawn: rounds as without a cap
+
+
+def test_reference_cap_is_a_uniform_sample():
+    rng = np.random.default_rng(1)
+    drawn = np.arange(100, 110)
+    hits = np.zeros(10)
+    for _ in range(3000):
+        kept = cap_reference_users(drawn, 3, rng)
+        assert len(kept) == 3 and len(set(kept)) == 3 and np.all(np.diff(kept) > 0) and set(kept) <= set(drawn)
+        hits[kept - 100] += 1
+    # Each user kept with chance 3/10; binomial sd over 3000 rounds is 0.0084 (common practice, no source: 4 sd).
+    assert np.all(np.abs(hits / 3000 - 0.3) < 4 * 0.0084)

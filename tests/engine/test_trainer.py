@@ -8,8 +8,8 @@ import pytest
 import torch
 from synthetic import mnar_logs
 
-from tasks.config import Config
 from tasks.engine.metrics import mae
+from tasks.engine.settings import Settings
 from tasks.engine.splits import heldout_mask
 from tasks.engine.trainer import fit
 
@@ -19,30 +19,16 @@ ROUND_KEYS = {"epoch", "reference_users", "reference_share", "adjusted_users", "
               "calibration_term", "val_mae", "seconds"}
 
 
-def test_heldout_split_is_a_function_of_the_pair() -> None:
-    rng = np.random.default_rng(0)
-    users = np.array([f"member-{k:06d}" for k in rng.integers(0, 5000, 20_000)], dtype=object)
-    items = np.array([f"title-{k:06d}" for k in rng.integers(0, 5000, 20_000)], dtype=object)
-    held = heldout_mask(users, items, 0.3)
-    order = rng.permutation(len(users))
-    assert np.array_equal(heldout_mask(users[order], items[order], 0.3), held[order])   # row order irrelevant
-    assert np.array_equal(heldout_mask(list(users[:50]), list(items[:50]), 0.3), held[:50])  # any sequence
-    # Share close to configured: within 4 binomial standard errors (normal approximation).
-    assert abs(held.mean() - 0.3) <= 4 * np.sqrt(0.3 * 0.7 / len(held))
-    with pytest.raises(ValueError, match="share"):
-        heldout_mask(users, items, 1.0)
-
-
 def test_heldout_probe_ratings_never_influence_training() -> None:
     logs = mnar_logs(n_users=80, n_items=40, per_user=8, probe_users=60, seed=11)
-    cfg = Config().updated({"debias.method": "calibrated", "model.max_epochs": 3, "model.batch_size": 256})
+    cfg = Settings().updated({"debias.method": "calibrated", "model.max_epochs": 3, "model.batch_size": 256})
     held = heldout_mask(logs.probe["user_id"].to_numpy(), logs.probe["item_id"].to_numpy(),
                         cfg.debias.heldout_share)
     assert 0 < held.sum() < len(held)
     changed = logs.probe.copy()
     changed.loc[held, "rating"] = 6 - changed.loc[held, "rating"]       # flip every held-out rating
-    a = fit(logs.organic, logs.probe, cfg.scale, cfg.model, cfg.debias)
-    b = fit(logs.organic, changed, cfg.scale, cfg.model, cfg.debias)
+    a = fit(logs.organic, logs.probe, cfg)
+    b = fit(logs.organic, changed, cfg)
     for k, v in a.checkpoint.model.state_dict().items():
         assert torch.equal(v, b.checkpoint.model.state_dict()[k]), k
     assert len(a.probe_heldout) == int(held.sum()) and len(a.probe_fit) == int((~held).sum())
@@ -51,10 +37,10 @@ def test_heldout_probe_ratings_never_influence_training() -> None:
 def test_early_stopping_restores_the_best_weights() -> None:
     logs = mnar_logs(n_users=100, n_items=40, per_user=10, probe_users=80, seed=12)
     # A large step and no weight decay overfit quickly, so validation MAE turns up and training stops.
-    cfg = Config().updated({"debias.method": "plain", "model.max_epochs": 40, "model.patience": 2,
-                            "model.learning_rate": 0.2, "model.weight_decay": 0.0, "model.batch_size": 128,
-                            "model.dim": 8})
-    res = fit(logs.organic, logs.probe, cfg.scale, cfg.model, cfg.debias)
+    cfg = Settings().updated({"debias.method": "plain", "model.max_epochs": 40, "model.patience": 2,
+                              "model.learning_rate": 0.2, "model.weight_decay": 0.0, "model.batch_size": 128,
+                              "model.dim": 8})
+    res = fit(logs.organic, logs.probe, cfg)
     vals = [r["val_mae"] for r in res.rounds]
     assert res.best_epoch < len(res.rounds) < 40                     # it stopped early, after the best
     assert res.best_epoch == int(np.argmin(vals)) + 1
@@ -72,8 +58,8 @@ def test_early_stopping_restores_the_best_weights() -> None:
 ])
 def test_every_method_trains_and_records_rounds(method: str, extra: dict) -> None:
     logs = mnar_logs(n_users=80, n_items=40, per_user=8, probe_users=60, seed=13)
-    cfg = Config().updated({"debias.method": method, "model.max_epochs": 2, "model.batch_size": 256, **extra})
-    res = fit(logs.organic, logs.probe, cfg.scale, cfg.model, cfg.debias)
+    cfg = Settings().updated({"debias.method": method, "model.max_epochs": 2, "model.batch_size": 256, **extra})
+    res = fit(logs.organic, logs.probe, cfg)
     assert len(res.rounds) == 2 and all(set(r) == ROUND_KEYS for r in res.rounds)
     assert [r["epoch"] for r in res.rounds] == [1, 2]
     assert all(np.isfinite(r["loss"]) and np.isfinite(r["val_mae"]) for r in res.rounds)
@@ -85,27 +71,24 @@ def test_every_method_trains_and_records_rounds(method: str, extra: dict) -> Non
 def test_calibration_pulls_profiles_toward_references() -> None:
     """A large weight ends with a smaller calibration term than a negligible one; weight 0 turns it off."""
     logs = mnar_logs(n_users=100, n_items=40, per_user=10, probe_users=80, seed=14)
-    cfg = Config().updated({"debias.method": "calibrated", "model.max_epochs": 6, "model.patience": 10,
-                            "model.batch_size": 256})
+    cfg = Settings().updated({"debias.method": "calibrated", "model.max_epochs": 6, "model.patience": 10,
+                              "model.batch_size": 256})
 
     def last_terms(weight: float) -> float:
-        res = fit(logs.organic, logs.probe, cfg.scale, cfg.model,
-                  cfg.updated({"debias.calibration_weight": weight}).debias)
+        res = fit(logs.organic, logs.probe, cfg.updated({"debias.calibration_weight": weight}))
         return float(np.mean([r["calibration_term"] for r in res.rounds[-3:]]))
 
     strong, weak = last_terms(20.0), last_terms(1e-4)
     assert strong < 0.7 * weak, (strong, weak)
-    off = fit(logs.organic, logs.probe, cfg.scale, cfg.model,
-              cfg.updated({"debias.calibration_weight": 0.0}).debias)
+    off = fit(logs.organic, logs.probe, cfg.updated({"debias.calibration_weight": 0.0}))
     assert all(r["calibration"] == "off" and r["adjusted_users"] == 0 for r in off.rounds)
 
 
 def test_probe_free_training_runs_every_epoch_and_says_so() -> None:
     logs = mnar_logs(n_users=50, n_items=30, per_user=6, probe_users=0, seed=15)
-    cfg = Config().updated({"debias.method": "calibrated", "model.max_epochs": 3, "model.patience": 1,
-                            "model.batch_size": 128})
-    res = fit(logs.organic, pd.DataFrame(columns=["user_id", "item_id", "rating"]), cfg.scale, cfg.model,
-              cfg.debias)
+    cfg = Settings().updated({"debias.method": "calibrated", "model.max_epochs": 3, "model.patience": 1,
+                              "model.batch_size": 128})
+    res = fit(logs.organic, pd.DataFrame(columns=["user_id", "item_id", "rating"]), cfg)
     assert len(res.rounds) == 3 and res.best_epoch == 3
     assert any("no probe ratings" in n for n in res.notes)
     assert all(r["calibration"].startswith("skipped") for r in res.rounds)
@@ -116,12 +99,21 @@ def test_all_item_profiles_fall_back_to_a_sample_over_the_memory_budget() -> Non
     base = {"debias.method": "calibrated", "model.max_epochs": 2, "model.batch_size": 128,
             "debias.profile_item_sample": 0}
     # Within budget: exact profiles over all 40 items, nothing to say.
-    cfg = Config().updated(base)
-    res = fit(logs.organic, logs.probe, cfg.scale, cfg.model, cfg.debias)
+    cfg = Settings().updated(base)
+    res = fit(logs.organic, logs.probe, cfg)
     assert not any("memory_budget_mb" in n for n in res.notes)
     assert all(r["calibration"] == "on" for r in res.rounds)
     # 256 users x 40 items x 13 float32 per step needs ~0.5 MB: a 0.01 MB budget forces the fallback.
-    cfg = Config().updated({**base, "debias.memory_budget_mb": 0.01})
-    res = fit(logs.organic, logs.probe, cfg.scale, cfg.model, cfg.debias)
+    cfg = Settings().updated({**base, "debias.memory_budget_mb": 0.01})
+    res = fit(logs.organic, logs.probe, cfg)
     assert any("exceeds memory_budget_mb; sampling 8 items" in n for n in res.notes), res.notes
     assert all(r["calibration"] == "on" and np.isfinite(r["calibration_term"]) for r in res.rounds)
+
+
+def test_trainer_applies_the_cap_and_says_so():
+    logs = mnar_logs(n_users=300, n_items=60, probe_users=250, probes_per_user=6, seed=2)
+    cfg = Settings().updated({"debias.method": "calibrated", "model.max_epochs": 3, "model.dim": 4,
+                              "debias.max_reference_users": 5, "debias.reference_p_min": 0.5})
+    res = fit(logs.organic, logs.probe, cfg)
+    assert all(r["reference_users"] == 5 for r in res.rounds)
+    assert any("capped at 5" in n for n in res.notes)

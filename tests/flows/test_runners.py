@@ -149,10 +149,11 @@ def test_scoring_shards_are_whole_blocks_and_change_nothing():
     from tasks.engine.scoring import users_per_block
     from tasks.engine.trainer import fit
     from tasks.publish import predictions
+    from tasks.train.settings import engine_settings
 
     logs = mnar_logs(n_users=400, n_items=90, seed=4)
     cfg = Config().updated({"model.dim": 4, "model.max_epochs": 2, "debias.method": "plain"})
-    ckpt = fit(logs.organic, logs.probe, cfg.scale, cfg.model, cfg.debias).checkpoint
+    ckpt = fit(logs.organic, logs.probe, engine_settings(cfg)).checkpoint
     budget_mb = 0.02                                    # 29 users per block over 90 titles
     block = users_per_block(len(ckpt.items), budget_mb * 2**20)
     assert block == 29

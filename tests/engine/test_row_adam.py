@@ -1,18 +1,13 @@
-"""Engine pieces that keep a round's cost bounded at scale: the RowAdam optimiser (against the reference
-implementation it replaces, ``torch.optim.SparseAdam``) and the cap on reference users per round."""
+"""RowAdam, the optimiser of training, against the reference implementation it replaces
+(``torch.optim.SparseAdam``)."""
 
 from __future__ import annotations
 
-import numpy as np
 import pytest
 import torch
 from torch import nn
 
-from synthetic import mnar_logs
-from tasks.config import Config
-from tasks.engine.reference import cap_reference_users
 from tasks.engine.row_adam import RowAdam
-from tasks.engine.trainer import fit
 
 
 def _tables(seed: int) -> list[nn.Embedding]:
@@ -97,33 +92,3 @@ def test_rejects_bad_settings():
         RowAdam([nn.Parameter(torch.zeros(2))], lr=0.0)
     with pytest.raises(ValueError, match="betas"):
         RowAdam([nn.Parameter(torch.zeros(2))], betas=(1.0, 0.9))
-
-
-def test_reference_cap_leaves_small_rounds_alone():
-    rng = np.random.default_rng(0)
-    drawn = np.array([3, 8, 11])
-    state = rng.bit_generator.state
-    assert cap_reference_users(drawn, 3, rng) is drawn
-    assert cap_reference_users(drawn, 0, rng) is drawn           # 0 = no cap
-    assert rng.bit_generator.state == state                       # nothing drawn: rounds as without a cap
-
-
-def test_reference_cap_is_a_uniform_sample():
-    rng = np.random.default_rng(1)
-    drawn = np.arange(100, 110)
-    hits = np.zeros(10)
-    for _ in range(3000):
-        kept = cap_reference_users(drawn, 3, rng)
-        assert len(kept) == 3 and len(set(kept)) == 3 and np.all(np.diff(kept) > 0) and set(kept) <= set(drawn)
-        hits[kept - 100] += 1
-    # Each user kept with chance 3/10; binomial sd over 3000 rounds is 0.0084 (common practice, no source: 4 sd).
-    assert np.all(np.abs(hits / 3000 - 0.3) < 4 * 0.0084)
-
-
-def test_trainer_applies_the_cap_and_says_so():
-    logs = mnar_logs(n_users=300, n_items=60, probe_users=250, probes_per_user=6, seed=2)
-    cfg = Config().updated({"debias.method": "calibrated", "model.max_epochs": 3, "model.dim": 4,
-                            "debias.max_reference_users": 5, "debias.reference_p_min": 0.5})
-    res = fit(logs.organic, logs.probe, cfg.scale, cfg.model, cfg.debias)
-    assert all(r["reference_users"] == 5 for r in res.rounds)
-    assert any("capped at 5" in n for n in res.notes)
