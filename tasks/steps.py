@@ -25,7 +25,9 @@ from tasks.workspace import Workspace
 
 
 def transient_only(task_, task_run, state) -> bool:
-    """Retry condition: retry OS-level I/O failures; bad data or a code error fails at once."""
+    """Retry condition (Prefect's ``retry_condition_fn``): retry OS-level I/O failures (``OSError``:
+    connection resets, timeouts, a file briefly missing); bad data (``ValueError``, including errors that
+    are both, such as ``io.UnsupportedOperation``) or a code error fails at once."""
     exc = state.data if isinstance(getattr(state, "data", None), BaseException) else None
     if exc is None:
         try:
