@@ -109,9 +109,9 @@ def train(cfg: Config, window: pd.DataFrame, base: Checkpoint | None,
 
 
 @task(name="evaluate", **COMPUTE)
-def evaluate(cfg: Config, heldout: pd.DataFrame, segments: pd.Series,
-             models: dict[str, Checkpoint | None]) -> dict:
-    return evaluation.evaluate_models(heldout, segments, models, cfg.evaluate, cfg.model.seed)
+def evaluate(cfg: Config, heldout: pd.DataFrame, segments: pd.Series, candidate: Checkpoint,
+             shadow: Checkpoint | None, live: Checkpoint | None) -> evaluation.Evaluation:
+    return evaluation.evaluate_models(heldout, segments, candidate, shadow, live, cfg.evaluate, cfg.model.seed)
 
 
 @task(name="plan-scoring", **COMPUTE)
