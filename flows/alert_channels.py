@@ -70,7 +70,8 @@ def send_block(name: str, rec: Mapping, cfg: Config) -> dict:
         block = Block.load(name)
         if not isinstance(block, NotificationBlock):
             raise TypeError(f"Prefect block {name!r} is a {type(block).__name__}, not a notification block")
-        # Some apprise-based blocks fail silently unless asked to raise (docs: NotificationBlock.raise_on_failure).
+        # Apprise-based blocks log a failed send and return unless asked to raise (Prefect 3 API reference,
+        # prefect.blocks.notifications: raise_on_failure, "causes the block to raise errors").
         guard = block.raise_on_failure() if hasattr(block, "raise_on_failure") else contextlib.nullcontext()
         with guard:
             block.notify(summary_line(rec), subject=f"tarewise {rec['severity']}: {rec['kind']}")
