@@ -31,10 +31,11 @@ class BackfillStopped(RuntimeError):
 
 
 def _night_row(out: dict, seconds: float) -> dict:
-    e = (out.get("evaluation") or {}).get("candidate") or {}
-    return {"run_date": out["run_date"], "status": out["status"], "version_id": out.get("version_id"),
-            "state": out.get("state"), "seconds": round(seconds, 2), "mae": e.get("mae"),
-            "heldout": e.get("n"), "message": out.get("message") or (out.get("gate") or {}).get("reason", "")}
+    """One backfill night for the summary, from the ``nightly`` flow's result (``NightRecord.to_dict``)."""
+    e = (out["evaluation"] or {}).get("candidate") or {}
+    return {"run_date": out["run_date"], "status": out["status"], "version_id": out["version_id"],
+            "state": out["state"], "seconds": round(seconds, 2), "mae": e.get("mae"), "heldout": e.get("n"),
+            "message": out["message"]}
 
 
 @flow(name="tarewise-backfill")

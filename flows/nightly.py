@@ -4,17 +4,22 @@ from __future__ import annotations
 
 import time
 
+import pandas as pd
 from prefect import flow, get_run_logger
 from prefect.artifacts import create_markdown_artifact, create_table_artifact
 
 from flows import runners
+from flows.alert_channels import prefect_channels
+from flows.night_record import NightRecord, epoch_seconds, input_counts, training_counts
 from tasks import ledger, steps
 from tasks.config import Config
 from tasks.dates import yesterday
+from tasks.engine.checkpoint import Checkpoint
 from tasks.evaluate.gate import decide
+from tasks.evaluate.segments import user_skew_segments
+from tasks.ingest.logs import IngestResult
 from tasks.lock import workspace_lock
 from tasks.monitor.night_report import report_night
-from tasks.monitor.skew_metrics import user_skew_segments
 from tasks.operate.retention import apply_retention_logged
 from tasks.operate.shared_copy import SharedCopyError
 from tasks.publish import versions
@@ -22,23 +27,10 @@ from tasks.publish.manifest import build_manifest
 from tasks.workspace import Workspace
 
 
-class _Clock:
-    """Stage durations for the ledger and manifest."""
-
-    def __init__(self) -> None:
-        self.durations: dict[str, float] = {}
-        self._t = time.perf_counter()
-
-    def lap(self, stage: str) -> None:
-        now = time.perf_counter()
-        self.durations[stage] = round(self.durations.get(stage, 0.0) + now - self._t, 3)
-        self._t = now
-
-
 @flow(name="tarewise-nightly")
 def nightly(cfg: Config, run_date: str | None = None, kind: str = "nightly", make_live: bool = True,
             take_lock: bool = True, base_from: str | None = None) -> dict:
-    """One night. ``make_live=False`` publishes without switching live (backfill's middle nights);
+    """One night; returns ``NightRecord.to_dict()`` (``flows/night_record.py``). ``make_live=False`` publishes without switching live (backfill's middle nights);
     ``take_lock=False`` when a parent flow (backfill) already holds the workspace lock; ``base_from``
     warm-starts from that version's chain instead of the live one (see ``versions.base_for_date``)."""
     ws = Workspace.at(cfg.paths.workspace)
@@ -64,12 +56,10 @@ def nightly_for(cfg: Config, dask_address: str | None = None, **options):
 
 
 def _night(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool, base_from: str | None) -> dict:
-    out = _work(cfg, ws, run_date, kind, make_live, base_from)
+    night = _work(cfg, ws, run_date, kind, make_live, base_from)
     if cfg.paths.shared:
-        out["shared"] = push_to_shared(cfg, f"night {run_date} is {out['status']} here"
-                                       + (f" (version {out['version_id']}, {out['state']})"
-                                          if out.get("version_id") else ""))
-    return out
+        night.shared = push_to_shared(cfg, night.outcome())
+    return night.to_dict()
 
 
 def push_to_shared(cfg: Config, done: str) -> dict:
@@ -87,93 +77,75 @@ def push_to_shared(cfg: Config, done: str) -> dict:
                               "The next night, or `tarewise share`, catches up.") from exc
 
 
-def _work(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool, base_from: str | None) -> dict:
+def _work(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool, base_from: str | None) -> NightRecord:
+    """The night's steps. ``ledger.recorded`` keeps the ledger row (done, skipped, or failed with the
+    exception) and each ``night.stage`` its duration."""
     log = get_run_logger()
     for name in versions.clean_staging(ws):
         log.warning("removed half-written version %s left by an interrupted run", name)
-    run_id = ledger.start_run(ws, kind, run_date)
-    clock = _Clock()
-    counts: dict = {}
-    try:
-        listing = steps.with_io_retries(steps.list_partition, cfg)(cfg, run_date)
-        # Files of a partition are independent: read and row-checked side by side on the task runner.
-        reads = [steps.with_io_retries(steps.read_log_file, cfg).submit(cfg, run_date, path) for path in listing.paths]
-        result = steps.validate_partition(cfg, listing, [f.result() for f in reads])
-        counts = {"rows_read": result.rows_read, "rows_ingested": result.rows_valid,
-                  "rows_quarantined": len(result.rejected)}
-        steps.with_io_retries(steps.quarantine_and_store, cfg)(cfg, run_date, result)
-        clock.lap("ingest")
-        window = steps.with_io_retries(steps.read_window, cfg)(cfg, run_date)
-        if len(window) < cfg.runtime.min_ratings_to_train:
-            message = (f"{len(window)} ratings in the window (< runtime.min_ratings_to_train="
-                       f"{cfg.runtime.min_ratings_to_train}); nothing trained or published")
-            log.warning(message)
-            ledger.finish_run(ws, run_id, "skipped", rows_ingested=counts["rows_ingested"],
-                              rows_quarantined=counts["rows_quarantined"], durations=clock.durations,
-                              message=message)
-            return {"run_date": run_date, "status": "skipped", "version_id": None, "message": message}
-        base_id, base, base_shadow = steps.with_io_retries(steps.load_base, cfg)(cfg, run_date, base_from)
-        clock.lap("window")
-        night = steps.train(cfg, window, base, base_shadow)
-        clock.lap("train")
-
-        cand = night.candidate
-        segments = user_skew_segments(window, cfg.evaluate.skew_margin)
-        models = {"candidate": cand.checkpoint, "shadow": night.shadow.checkpoint if night.shadow else None,
-                  "live": base}
-        evaluation = steps.evaluate(cfg, cand.probe_heldout, segments, models)
-        decision = decide(evaluation["candidate"], evaluation["live"], evaluation["shadow"], cfg.gate)
-        log.info("gate: %s (%s)", "promote" if decision.promote else "hold", decision.reason)
-        clock.lap("evaluate")
-
-        # Top-N lists in shards of whole scoring blocks, side by side on the task runner; joined in plan order.
-        shards = steps.plan_scoring(cfg, cand.checkpoint, window, 2 * runners.workers(cfg.runtime))
-        scored = [steps.score_users.submit(cfg, cand.checkpoint, shard) for shard in shards]
-        preds = steps.assemble_predictions(cand.checkpoint, [f.result() for f in scored])
-        clock.lap("predict")
-        version_id = versions.new_version_id(ws, run_date)
-        counts.update(window_ratings=len(window), window_users=int(window["user_id"].nunique()),
-                      window_items=int(window["item_id"].nunique()), new_users=cand.new_users,
-                      new_items=cand.new_items, heldout_probe=len(cand.probe_heldout),
-                      fit_probe=len(cand.probe_fit), predictions=len(preds))
-        manifest = build_manifest(cfg, run_date, kind, base_id, result.files,
-                                  sorted(window["dt"].astype(str).unique().tolist()), counts, evaluation,
-                                  decision.to_dict(), cand.rounds, cand.notes, cand.checkpoint.method)
-        state = steps.with_io_retries(steps.publish_version, cfg)(cfg, version_id, cand.checkpoint,
-                                      night.shadow.checkpoint if night.shadow else None, preds, manifest,
-                                      make_live=decision.promote and make_live)
-        clock.lap("publish")
-
-        summary = report_night(cfg, ws, run_date, window, result, night, evaluation, decision, base,
-                               base_id, version_id, state, kind)
-        clock.lap("report")
-        _artifacts(run_date, version_id, state, decision, evaluation, summary)
-        ledger.finish_run(ws, run_id, "done", version_id=version_id, state=state,
-                          rows_ingested=counts["rows_ingested"], rows_quarantined=counts["rows_quarantined"],
-                          durations=clock.durations, message=decision.reason)
-        if kind == "nightly":  # a backfill applies retention once, after its last night
-            apply_retention_logged(cfg, ws, run_date, log)
-        return {"run_date": run_date, "status": "done", "version_id": version_id, "state": state,
-                "gate": decision.to_dict(), "evaluation": evaluation, "durations": clock.durations,
-                "counts": counts, "alerts": summary.get("alerts", []),
-                "epoch_seconds": {"candidate": [r["seconds"] for r in cand.rounds],
-                                  "shadow": [r["seconds"] for r in night.shadow.rounds] if night.shadow else []}}
-    except BaseException as exc:
-        ledger.finish_run(ws, run_id, "failed", rows_ingested=counts.get("rows_ingested"),
-                          rows_quarantined=counts.get("rows_quarantined"), durations=clock.durations,
-                          message=f"{type(exc).__name__}: {exc}"[:2000])
-        raise
+    with ledger.recorded(ws, NightRecord(kind, run_date)) as night:
+        with night.stage("ingest"):
+            ingested = _ingest(cfg, run_date)
+            night.counts.update(input_counts(ingested))
+        with night.stage("window"):
+            window = steps.with_io_retries(steps.read_window, cfg)(cfg, run_date)
+            if len(window) < cfg.runtime.min_ratings_to_train:
+                night.skip(f"{len(window)} ratings in the window (< runtime.min_ratings_to_train="
+                           f"{cfg.runtime.min_ratings_to_train}); nothing trained or published")
+                log.warning(night.message)
+                return night
+            base_id, base, base_shadow = steps.with_io_retries(steps.load_base, cfg)(cfg, run_date, base_from)
+        with night.stage("train"):
+            trained = steps.train(cfg, window, base, base_shadow)
+        cand, shadow = trained.candidate, trained.shadow.checkpoint if trained.shadow else None
+        with night.stage("evaluate"):
+            segments = user_skew_segments(window, cfg.evaluate.skew_margin)
+            night.evaluation = steps.evaluate(cfg, cand.probe_heldout, segments, cand.checkpoint, shadow, base)
+            night.gate = decide(night.evaluation, cfg.gate)
+            log.info("gate: %s (%s)", "promote" if night.gate.promote else "hold", night.gate.reason)
+        with night.stage("predict"):
+            preds = _predict(cfg, cand.checkpoint, window)
+        with night.stage("publish"):
+            night.counts.update(training_counts(window, cand, preds))
+            manifest = build_manifest(cfg, run_date, kind, base_id, ingested.files,
+                                      sorted(window["dt"].astype(str).unique().tolist()), night.counts,
+                                      night.evaluation, night.gate, cand.rounds, cand.notes, cand.checkpoint.method)
+            version_id = versions.new_version_id(ws, run_date)
+            state = steps.with_io_retries(steps.publish_version, cfg)(
+                cfg, version_id, cand.checkpoint, shadow, preds, manifest, make_live=night.gate.promote and make_live)
+        with night.stage("report"):
+            monitored = report_night(cfg, ws, run_date, window, ingested, trained, night.evaluation, base=base,
+                                     base_id=base_id, version_id=version_id, state=state,
+                                     gate_reason=night.gate.reason, kind=kind, channels=prefect_channels(cfg))
+        night.alerts, night.epoch_seconds = monitored.alert_lines(), epoch_seconds(trained)
+        _artifacts(night, monitored.markdown)
+        night.done(version_id, state, message=night.gate.reason)
+    if kind == "nightly":  # a backfill applies retention once, after its last night
+        apply_retention_logged(cfg, ws, run_date, log)
+    return night
 
 
-def _artifacts(run_date, version_id, state, decision, evaluation, summary) -> None:
-    rows = []
-    for name in ("candidate", "shadow", "live"):
-        e = evaluation.get(name)
-        if e:
-            rows.append({"model": name, "n": e["n"], "mae": round(e["mae"], 4),
-                         "mae_ci": f"[{e['mae_lo']:.4f}, {e['mae_hi']:.4f}]", "rmse": round(e["rmse"], 4)})
+def _ingest(cfg: Config, run_date: str) -> IngestResult:
+    """List the night's partition, read and row-check its files side by side on the task runner (they are
+    independent), combine them, then quarantine rejected rows and store the valid ones."""
+    listing = steps.with_io_retries(steps.list_partition, cfg)(cfg, run_date)
+    reads = [steps.with_io_retries(steps.read_log_file, cfg).submit(cfg, run_date, path) for path in listing.paths]
+    result = steps.validate_partition(cfg, listing, [f.result() for f in reads])
+    steps.with_io_retries(steps.quarantine_and_store, cfg)(cfg, run_date, result)
+    return result
+
+
+def _predict(cfg: Config, ckpt: Checkpoint, window: pd.DataFrame) -> pd.DataFrame:
+    """Top-N lists in shards of whole scoring blocks, side by side on the task runner; joined in plan order."""
+    shards = steps.plan_scoring(cfg, ckpt, window, 2 * runners.workers(cfg.runtime))
+    scored = [steps.score_users.submit(cfg, ckpt, shard) for shard in shards]
+    return steps.assemble_predictions(ckpt, [f.result() for f in scored])
+
+
+def _artifacts(night: NightRecord, markdown: str) -> None:
+    """The held-out errors as a Prefect table artifact and the night's summary as a Markdown one."""
+    rows = [{"model": name, "n": e.n, "mae": round(e.mae, 4), "mae_ci": f"[{e.mae_lo:.4f}, {e.mae_hi:.4f}]",
+             "rmse": round(e.rmse, 4)} for name, e in night.evaluation.models().items() if e]
     create_table_artifact(key="tarewise-heldout-errors", table=rows,
-                          description=f"Held-out probe errors, run {run_date}")
-    create_markdown_artifact(key="tarewise-night", markdown=summary.get("markdown") or
-                             f"# tarewise {run_date}\n\nversion `{version_id}` is **{state}**: {decision.reason}\n",
-                             description=f"tarewise night {run_date}")
+                          description=f"Held-out probe errors, run {night.run_date}")
+    create_markdown_artifact(key="tarewise-night", markdown=markdown, description=f"tarewise night {night.run_date}")

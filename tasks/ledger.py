@@ -2,13 +2,22 @@
 
 Stored as one small Parquet file (schemas.LEDGER), rewritten atomically on each update: runs are few
 (one or two a day), so read-modify-write is simpler and safer than appends.
+
+A run records itself with :func:`recorded`: the row is started on entry, the run fills in a
+:class:`RunRecord` (stage timings with ``record.stage(...)``, counts, version) and the row is finished
+exactly once on exit: ``done``, ``skipped`` (when the run said so), or ``failed`` with the exception.
 """
 
 from __future__ import annotations
 
 import json
+import time
 import uuid
+from collections.abc import Iterator
+from contextlib import contextmanager
+from dataclasses import dataclass, field
 from datetime import datetime, timezone
+from typing import TypeVar
 
 import pandas as pd
 import pyarrow as pa
@@ -84,3 +93,64 @@ def mark_interrupted(ws: Workspace, message: str = "process ended without finish
     df.loc[hit, "message"] = message
     _write(ws, df)
     return ids
+
+
+@dataclass
+class RunRecord:
+    """What one run's ledger row will say, filled in while the run goes. ``counts``: the run's counts by
+    name (the ledger keeps ``rows_ingested`` and ``rows_quarantined``); ``durations``: seconds per stage."""
+
+    kind: str
+    run_date: str
+    run_id: str = ""
+    status: str = "running"
+    version_id: str | None = None
+    state: str | None = None
+    message: str = ""
+    counts: dict[str, int] = field(default_factory=dict)
+    durations: dict[str, float] = field(default_factory=dict)
+
+    @contextmanager
+    def stage(self, name: str) -> Iterator[None]:
+        """Time the block as stage ``name`` (seconds, added up when a stage is entered twice); a stage
+        that raises is timed too."""
+        t0 = time.perf_counter()
+        try:
+            yield
+        finally:
+            self.durations[name] = round(self.durations.get(name, 0.0) + time.perf_counter() - t0, 3)
+
+    def skip(self, message: str) -> None:
+        """The run ends without its work (e.g. too little data); the row is finished ``skipped``."""
+        self.status, self.message = "skipped", message
+
+    def done(self, version_id: str | None, state: str | None, message: str = "") -> None:
+        """The run did its work; the row is finished ``done`` with this version and state."""
+        self.status, self.version_id, self.state, self.message = "done", version_id, state, message
+
+
+R = TypeVar("R", bound=RunRecord)
+
+
+@contextmanager
+def recorded(ws: Workspace, record: R) -> Iterator[R]:
+    """Start ``record``'s ledger row, yield the record, and finish the row exactly once on exit: as the
+    record says (``done`` when the block set no other status), or ``failed`` with the exception's type
+    and message (then the exception propagates, KeyboardInterrupt included)."""
+    record.run_id = start_run(ws, record.kind, record.run_date)
+    try:
+        yield record
+    except BaseException as exc:
+        record.status, record.message = "failed", f"{type(exc).__name__}: {exc}"[:2000]
+        _finish(ws, record)
+        raise
+    if record.status == "running":
+        record.status = "done"
+    _finish(ws, record)
+
+
+def _finish(ws: Workspace, record: RunRecord) -> None:
+    finish_run(ws, record.run_id, record.status, version_id=record.version_id, state=record.state,
+               rows_ingested=record.counts.get("rows_ingested"),
+               rows_quarantined=record.counts.get("rows_quarantined"), durations=record.durations,
+               message=record.message)

@@ -25,7 +25,9 @@ from tasks.workspace import Workspace
 
 
 def transient_only(task_, task_run, state) -> bool:
-    """Retry condition: retry OS-level I/O failures; bad data or a code error fails at once."""
+    """Retry condition (Prefect's ``retry_condition_fn``): retry OS-level I/O failures (``OSError``:
+    connection resets, timeouts, a file briefly missing); bad data (``ValueError``, including errors that
+    are both, such as ``io.UnsupportedOperation``) or a code error fails at once."""
     exc = state.data if isinstance(getattr(state, "data", None), BaseException) else None
     if exc is None:
         try:
@@ -107,9 +109,9 @@ def train(cfg: Config, window: pd.DataFrame, base: Checkpoint | None,
 
 
 @task(name="evaluate", **COMPUTE)
-def evaluate(cfg: Config, heldout: pd.DataFrame, segments: pd.Series,
-             models: dict[str, Checkpoint | None]) -> dict:
-    return evaluation.evaluate_models(heldout, segments, models, cfg.evaluate, cfg.model.seed)
+def evaluate(cfg: Config, heldout: pd.DataFrame, segments: pd.Series, candidate: Checkpoint,
+             shadow: Checkpoint | None, live: Checkpoint | None) -> evaluation.Evaluation:
+    return evaluation.evaluate_models(heldout, segments, candidate, shadow, live, cfg.evaluate, cfg.model.seed)
 
 
 @task(name="plan-scoring", **COMPUTE)

@@ -26,9 +26,9 @@ metric pinned at 0) the MAD is 0 and the band collapses to a point, so the next 
 
 - a fixed minimum per metric (:data:`SCALE_FLOORS`): 0.5 % of the rating range, 0.02 stars on a 1-5
   scale. Far above float noise; below the night-to-night noise of any realistic night (measured on the
-  simulated nights of ``tests/test_alert_rules.py``, about 1,500 organic ratings a night: 0.038 stars
+  simulated nights of ``tests/monitor/test_alert_rules.py``, about 1,500 organic ratings a night: 0.038 stars
   for the mean shift, 0.032 for W1), so it only acts on histories flatter than real data can be;
-- tonight's own standard error (``<metric>_se`` from ``skew_metrics.night_noise_se``: tonight's
+- tonight's own standard error (``<metric>_se`` from ``distributions.night_noise_se``: tonight's
   organic sample plus tonight's probes entering the reference, cluster-robust by member). A median
   and MAD of 5 to 14 nights often understate the spread by chance (for normal noise, 1.4826 * MAD
   of 5 values is below half of sigma 29 % of the time, of 14 values below 0.7 sigma 21 % of the
@@ -43,7 +43,7 @@ standard error, against about 1.3 for the two star-valued metrics).
 Measured on simulated stable nights (200 seeded 30-night series, default settings): 3 of 200 series
 raised a skew alert (1.5 %), 3 alerts in 5,000 nights that could alert; a doubling of the share of
 members who rate what they love was alerted on its first or second night in every one of 20 seeded
-series. See ``tests/test_alert_rules.py``.
+series. See ``tests/monitor/test_alert_rules.py``.
 
 Absolute guards need no history: probe coverage collapsed, quarantine share high, and the candidate
 (trained with the configured debiasing) clearly worse than the plain shadow model on held-out probes.
@@ -68,7 +68,7 @@ import pandas as pd
 
 from tasks.config import Config, ConfigError
 from tasks.dates import days_between
-from tasks.monitor.skew_metrics import jsonable
+from tasks.monitor.night_metrics import jsonable
 
 #: Consistency constant: 1.4826 * MAD estimates sigma for normal data (Rousseeuw & Croux 1993).
 MAD_TO_SIGMA = 1.4826
@@ -288,7 +288,7 @@ def evaluate_alerts(tonight: Mapping, history: pd.DataFrame, cfg: Config) -> lis
     return skew_alerts(tonight, history, cfg) + guard_alerts(tonight, cfg)
 
 
-#: History phase of an alert that a re-run of its night no longer raises (see ``alert_delivery``).
+#: History phase of an alert that a re-run of its night no longer raises (see ``alert_history``).
 WITHDRAWN = "withdrawn"
 
 

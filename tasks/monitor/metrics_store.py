@@ -102,12 +102,12 @@ def read_metrics(ws: Workspace, until: str | None = None) -> pd.DataFrame:
     return df.sort_values("run_date").reset_index(drop=True)
 
 
-def night_row(ws: Workspace, run_date: str) -> dict:
-    """The stored row of one date as a dict; :class:`MetricsStoreError` naming the file if absent."""
-    df = read_metrics(ws)
-    hit = df[df["run_date"] == run_date]
+def row_of(series: pd.DataFrame, run_date: str, path: Path) -> dict:
+    """The row of ``run_date`` in a series read from ``path`` (:func:`read_metrics`) as a dict;
+    :class:`MetricsStoreError` naming the file if absent."""
+    hit = series[series["run_date"] == run_date]
     if hit.empty:
-        raise MetricsStoreError(f"no metrics stored for {run_date} in {ws.metrics}; run the nightly for that "
+        raise MetricsStoreError(f"no metrics stored for {run_date} in {path}; run the nightly for that "
                                 "date first")
     return hit.iloc[0].to_dict()
 

@@ -1,18 +1,18 @@
 """The nightly drift report: one self-contained HTML page and its JSON twin per night.
 
-``render_report(ws, run_date, cfg)`` rebuilds a night's report from what is stored (the metrics time
-series and the alert history) and nothing else, so ``tarewise report --date D`` can redo any night.
+A report is a pure rendering of what it is given: tonight's stored metrics row, the stored series and
+the alert history (:func:`build_report`, :func:`render_html`); :func:`write_report` writes the two files.
+The nightly monitor pass hands in what it has just stored; :func:`render_report` loads the same pieces
+from the workspace, so ``tarewise report --date D`` can redo any night and gets the same page.
 
 The page carries no scripts, fonts, stylesheets or images from elsewhere: CSS is inline, charts are
-matplotlib SVGs embedded as ``data:`` URIs, text uses the reader's system fonts, and every value that
-comes from data (ids, reasons, explanations) goes through jinja2's autoescape. Output is deterministic
-for the same stored inputs (no timestamps, fixed SVG id salt, no SVG metadata).
+matplotlib SVGs embedded as ``data:`` URIs (``report_charts``), text uses the reader's system fonts, and
+every value that comes from data (ids, reasons, explanations) goes through jinja2's autoescape. Output
+is deterministic for the same stored inputs (no timestamps, fixed SVG id salt, no SVG metadata).
 """
 
 from __future__ import annotations
 
-import base64
-import io
 import json
 import math
 import re
@@ -20,32 +20,28 @@ from collections.abc import Mapping, Sequence
 from pathlib import Path
 
 import jinja2
-import matplotlib
-import numpy as np
 import pandas as pd
-from matplotlib.figure import Figure
 
 from tasks.config import Config
-from tasks.monitor.alert_delivery import night_alerts, read_history
-from tasks.monitor.alert_rules import SKEW_METRICS, WITHDRAWN, metric_band
-from tasks.monitor.metrics_store import night_row, read_metrics
-from tasks.monitor.skew_metrics import jsonable
+from tasks.evaluate.evaluation import MODELS
+from tasks.evaluate.segments import SEGMENTS
 from tasks.files import atomic_write_bytes
+from tasks.monitor.alert_history import FINAL, night_alerts, read_history
+from tasks.monitor.alert_rules import KIND_SKEW, SKEW_METRICS, WITHDRAWN, metric_band
+from tasks.monitor.metrics_store import read_metrics, row_of
+from tasks.monitor.night_metrics import jsonable
+from tasks.monitor.report_charts import (
+    chart_mae_trend,
+    chart_prediction_shift,
+    chart_rating_histograms,
+    chart_skew_trend,
+)
 from tasks.workspace import Workspace
 
 REPORT_FORMAT = "tarewise-night-report/1"
 #: Nights shown in trend charts.
 TREND_NIGHTS = 60
 TEMPLATES = Path(__file__).parent / "templates"
-
-# Palette (our own): rust for organic ratings, deep teal for probe ratings and the candidate,
-# warm grey for the shadow model, ochre for the live version, a dark berry for alerts.
-COLOURS = {
-    "organic": "#b4532a", "probe": "#1f6b70", "candidate": "#1f6b70", "shadow": "#8b8680",
-    "live": "#c08a1e", "band": "#e9e2d3", "alert": "#8c1d40", "ink": "#2a2d31", "grid": "#dedad2",
-}
-
-MODELS = ("candidate", "shadow", "live")
 
 
 # --------------------------------------------------------------------------------------------------
@@ -92,74 +88,6 @@ def _detail(row: Mapping) -> dict:
     return d if isinstance(d, dict) else {}
 
 
-# --------------------------------------------------------------------------------------------------
-# Charts (matplotlib object API, Agg-free SVG output; nothing global is touched)
-# --------------------------------------------------------------------------------------------------
-
-_SVG_RC = {"svg.hashsalt": "tarewise", "svg.fonttype": "path", "font.size": 9,
-           "axes.edgecolor": COLOURS["grid"], "axes.labelcolor": COLOURS["ink"],
-           "xtick.color": COLOURS["ink"], "ytick.color": COLOURS["ink"]}
-
-
-def _charting(fn):
-    """Run a chart function under our rc settings (fonts are read when artists are created)."""
-    import functools
-
-    @functools.wraps(fn)
-    def wrapper(*args, **kwargs):
-        with matplotlib.rc_context(_SVG_RC):
-            return fn(*args, **kwargs)
-    return wrapper
-
-
-def _figure(width: float = 6.4, height: float = 2.9) -> Figure:
-    fig = Figure(figsize=(width, height), dpi=100, layout="constrained")
-    return fig
-
-
-def _style(ax) -> None:
-    ax.grid(True, axis="y", color=COLOURS["grid"], linewidth=0.6)
-    ax.set_axisbelow(True)
-    for side in ("top", "right"):
-        ax.spines[side].set_visible(False)
-
-
-def _svg_data_uri(fig: Figure) -> str:
-    buf = io.BytesIO()
-    fig.savefig(buf, format="svg", metadata={"Date": None, "Creator": None, "Format": None, "Type": None})
-    svg = buf.getvalue().decode("utf-8")
-    svg = re.sub(r"<metadata>.*?</metadata>", "", svg, flags=re.S)
-    return "data:image/svg+xml;base64," + base64.b64encode(svg.encode("utf-8")).decode("ascii")
-
-
-def _short_dates(dates: Sequence[str]) -> list[str]:
-    return [d[5:] for d in dates]  # MM-DD keeps the axis readable
-
-
-@_charting
-def chart_rating_histograms(detail: Mapping) -> str | None:
-    """Organic (tonight) vs probe (window) rating shares per level."""
-    org = np.asarray(detail.get("hist_tonight_organic") or [], dtype=float)
-    probe = np.asarray(detail.get("hist_window_probe") or [], dtype=float)
-    edges = np.asarray(detail.get("rating_edges") or [], dtype=float)
-    if org.size == 0 or edges.size != org.size + 1 or (org.sum() == 0 and probe.sum() == 0):
-        return None
-    centres = (edges[:-1] + edges[1:]) / 2
-    width = np.diff(edges).min() * 0.38
-    fig = _figure()
-    ax = fig.add_subplot()
-    for shift, h, key, label in ((-width / 2, org, "organic", "organic ratings, tonight"),
-                                 (width / 2, probe, "probe", "probe ratings, whole window")):
-        share = h / h.sum() if h.sum() else h
-        ax.bar(centres + shift, share, width=width, color=COLOURS[key], label=label)
-    ax.set_xticks(centres, [f"{c:g}" for c in centres])
-    ax.set_xlabel("rating (stars)")
-    ax.set_ylabel("share of ratings")
-    _style(ax)
-    ax.legend(frameon=False, loc="upper left")
-    return _svg_data_uri(fig)
-
-
 def _trend_frame(series: pd.DataFrame, run_date: str, cfg: Config, alert_dates: set[str]) -> pd.DataFrame:
     """Per night up to ``run_date``: mean shift, its band (as the rule saw it), alert flag, MAEs."""
     upto = series[series["run_date"] <= run_date].sort_values("run_date").reset_index(drop=True)
@@ -178,89 +106,13 @@ def _trend_frame(series: pd.DataFrame, run_date: str, cfg: Config, alert_dates: 
     return pd.DataFrame(rows)
 
 
-@_charting
-def chart_skew_trend(trend: pd.DataFrame) -> str | None:
-    """Mean shift per night with its trailing band and the nights that raised a skew alert."""
-    if trend.empty or trend["skew_mean_shift"].isna().all():
-        return None
-    x = np.arange(len(trend))
-    y = trend["skew_mean_shift"].astype(float).to_numpy()
-    lo = trend["band_lo"].astype(float).to_numpy()
-    hi = trend["band_hi"].astype(float).to_numpy()
-    fig = _figure(10.0, 3.3)
-    ax = fig.add_subplot()
-    ax.fill_between(x, lo, hi, color=COLOURS["band"], step="mid", label="usual range (trailing band)",
-                    where=~np.isnan(lo))
-    ax.plot(x, y, color=COLOURS["ink"], linewidth=1.2, marker="o", markersize=3, label="organic \u2212 probe mean")
-    hit = trend["skew_alert"].to_numpy(dtype=bool)
-    if hit.any():
-        ax.scatter(x[hit], y[hit], s=70, marker="D", facecolors="none", edgecolors=COLOURS["alert"],
-                   linewidths=1.6, label="skew alert", zorder=3)
-    ax.axhline(0, color=COLOURS["grid"], linewidth=0.8)
-    step = max(1, len(x) // 8)
-    ax.set_xticks(x[::step], _short_dates(trend["run_date"].tolist())[::step])
-    ax.set_ylabel("organic − probe mean (stars)")
-    ax.set_xlim(-0.6, len(x) - 0.4)
-    _style(ax)
-    ax.legend(frameon=False, loc="lower left", bbox_to_anchor=(0, 1.0), ncols=3)
-    return _svg_data_uri(fig)
-
-
-@_charting
-def chart_prediction_shift(detail: Mapping) -> str | None:
-    """Predicted-rating shares per bin: candidate vs live."""
-    cand = detail.get("pred_hist_candidate")
-    live = detail.get("pred_hist_live")
-    edges = np.asarray(detail.get("pred_edges") or [], dtype=float)
-    if not cand or edges.size != len(cand) + 1:
-        return None
-    centres = (edges[:-1] + edges[1:]) / 2
-    width = np.diff(edges).min() * (0.4 if live else 0.8)
-    fig = _figure()
-    ax = fig.add_subplot()
-    series = [("candidate", np.asarray(cand, float))] + ([("live", np.asarray(live, float))] if live else [])
-    for j, (key, h) in enumerate(series):
-        offset = (j - (len(series) - 1) / 2) * width
-        ax.bar(centres + offset, h / h.sum() if h.sum() else h, width=width, color=COLOURS[key], label=key)
-    ax.set_xlabel("predicted rating (stars)")
-    ax.set_ylabel("share of sampled pairs")
-    _style(ax)
-    ax.legend(frameon=False, loc="upper left")
-    return _svg_data_uri(fig)
-
-
-@_charting
-def chart_mae_trend(trend: pd.DataFrame) -> str | None:
-    """Held-out probe MAE per night for candidate, shadow and live, with confidence intervals."""
-    if trend.empty or all(trend[f"{m}_mae"].isna().all() for m in MODELS):
-        return None
-    x = np.arange(len(trend))
-    fig = _figure(10.0, 3.3)
-    ax = fig.add_subplot()
-    for m in MODELS:
-        y = trend[f"{m}_mae"].astype(float).to_numpy()
-        if np.isnan(y).all():
-            continue
-        lo = trend[f"{m}_mae_lo"].astype(float).to_numpy()
-        hi = trend[f"{m}_mae_hi"].astype(float).to_numpy()
-        ax.fill_between(x, lo, hi, color=COLOURS[m], alpha=0.14, linewidth=0)
-        ax.plot(x, y, color=COLOURS[m], marker="o", markersize=3, linewidth=1.4, label=m)
-    step = max(1, len(x) // 8)
-    ax.set_xticks(x[::step], _short_dates(trend["run_date"].tolist())[::step])
-    ax.set_ylabel("held-out probe MAE (stars)")
-    ax.set_xlim(-0.6, len(x) - 0.4)
-    _style(ax)
-    ax.legend(frameon=False, loc="lower left", bbox_to_anchor=(0, 1.0), ncols=3)
-    return _svg_data_uri(fig)
-
-
 # --------------------------------------------------------------------------------------------------
 # Report content
 # --------------------------------------------------------------------------------------------------
 
 def _delivery_text(rec: Mapping) -> str:
     d = rec.get("delivery") or {}
-    if rec.get("phase") != "final":
+    if rec.get("phase") != FINAL:
         return "delivery pending (the run stopped before delivery finished)"
     parts = []
     for key in ("event", "webhook"):
@@ -286,14 +138,15 @@ def _alert_view(rec: Mapping) -> dict:
     }
 
 
-def build_report(ws: Workspace, run_date: str, cfg: Config) -> dict:
-    """Everything the page shows, as plain data (the JSON twin plus chart data URIs under ``charts``)."""
-    row = night_row(ws, run_date)
-    series = read_metrics(ws, until=run_date)
-    history = read_history(ws)
-    alerts = night_alerts(ws, run_date, history)
+def build_report(run_date: str, cfg: Config, row: Mapping, series: pd.DataFrame, history: Sequence[Mapping]) -> dict:
+    """Everything the page shows, as plain data (the JSON twin plus chart data URIs under ``charts``).
+
+    ``row``: the night's stored metrics row (``metrics_store.row_of``); ``series``: the stored series
+    (nights after ``run_date`` are ignored); ``history``: every alert history record, in file order.
+    """
+    alerts = night_alerts(history, run_date)
     withdrawn = {(r.get("alert_id"), r.get("run_date")) for r in history if r.get("phase") == WITHDRAWN}
-    skew_dates = {str(r.get("run_date")) for r in history if r.get("kind") == "skew_shift"
+    skew_dates = {str(r.get("run_date")) for r in history if r.get("kind") == KIND_SKEW
                   and (r.get("alert_id"), r.get("run_date")) not in withdrawn}
     detail = _detail(row)
     trend = _trend_frame(series, run_date, cfg, skew_dates)
@@ -338,7 +191,7 @@ def render_html(report: Mapping) -> str:
         r=report, m=m, d=d, verdict=verdict, worst=("critical" if "critical" in severities else
                                                     "warning" if severities else "calm"),
         alerts=[_alert_view(a) for a in report["alerts"]],
-        segments=[(name, (d.get("segments") or {}).get(name) or {}) for name in ("up", "down", "neutral", "unknown")],
+        segments=[(name, (d.get("segments") or {}).get(name) or {}) for name in SEGMENTS],
         models=[(mdl, {s: m.get(f"{mdl}_{s}") for s in ("mae", "mae_lo", "mae_hi", "rmse", "rmse_lo", "rmse_hi", "n")})
                 for mdl in MODELS],
         eval_segments=d.get("evaluation_segments") or {},
@@ -346,9 +199,10 @@ def render_html(report: Mapping) -> str:
     )
 
 
-def render_report(ws: Workspace, run_date: str, cfg: Config) -> tuple[Path, Path]:
-    """Write ``ws.reports/<run_date>.html`` and ``.json`` from stored metrics and alert history only."""
-    report = build_report(ws, run_date, cfg)
+def write_report(ws: Workspace, run_date: str, cfg: Config, row: Mapping, series: pd.DataFrame,
+                 history: Sequence[Mapping]) -> tuple[Path, Path]:
+    """Write ``ws.reports/<run_date>.html`` and ``.json`` for the given pieces (see :func:`build_report`)."""
+    report = build_report(run_date, cfg, row, series, history)
     html = render_html(report)
     twin = {k: v for k, v in report.items() if k != "charts"}
     html_path = ws.reports / f"{run_date}.html"
@@ -356,6 +210,13 @@ def render_report(ws: Workspace, run_date: str, cfg: Config) -> tuple[Path, Path
     atomic_write_bytes(html_path, html.encode("utf-8"))
     atomic_write_bytes(json_path, (json.dumps(twin, indent=2, sort_keys=True, allow_nan=False) + "\n").encode("utf-8"))
     return html_path, json_path
+
+
+def render_report(ws: Workspace, run_date: str, cfg: Config) -> tuple[Path, Path]:
+    """Re-render a night's report from what is stored: the metrics series and the alert history, each
+    read once (``tarewise report --date``)."""
+    series = read_metrics(ws)
+    return write_report(ws, run_date, cfg, row_of(series, run_date, ws.metrics), series, read_history(ws))
 
 
 # --------------------------------------------------------------------------------------------------

@@ -5,14 +5,12 @@ from __future__ import annotations
 
 import json
 
-
 import pandas as pd
 
 from tasks import ledger
 from tasks.dates import shift
 from tasks.lock import is_stale, read_lock
-from tasks.monitor.alert_delivery import read_history
-from tasks.monitor.alert_rules import WITHDRAWN
+from tasks.monitor.alert_history import latest_by_night, read_history
 from tasks.operate.retention import default_as_of
 from tasks.publish import versions
 from tasks.workspace import Workspace
@@ -67,12 +65,8 @@ def live_summary(ws: Workspace) -> dict | None:
 def recent_alerts(ws: Workspace, as_of: str, days: int) -> list[dict]:
     """Alerts raised for run dates in ``(as_of - days, as_of]``: the latest record of each, oldest first."""
     first = shift(as_of, -days)
-    latest: dict[tuple, dict] = {}
-    for rec in read_history(ws):
-        rd = str(rec.get("run_date", ""))
-        if rec.get("alert_id") and first < rd <= as_of:
-            latest[(rec["alert_id"], rd)] = rec
-    return sorted((r for r in latest.values() if r.get("phase") != WITHDRAWN), key=lambda r: (str(r.get("run_date")), str(r.get("recorded_at", ""))))
+    latest = latest_by_night(read_history(ws), lambda run_date: first < run_date <= as_of)
+    return sorted(latest, key=lambda r: (str(r.get("run_date")), str(r.get("recorded_at", ""))))
 
 
 def status(ws: Workspace, timezone: str, stale_seconds: float, runs: int = 10, days: int = 7) -> dict:

@@ -9,6 +9,8 @@ from pathlib import Path
 
 from tasks.config import Config
 from tasks.dates import window_start
+from tasks.evaluate.evaluation import Evaluation
+from tasks.evaluate.gate import GateDecision
 
 
 @lru_cache(maxsize=1)
@@ -33,8 +35,11 @@ def window_bounds(run_date: str, days: int) -> tuple[str, str]:
 
 
 def build_manifest(cfg: Config, run_date: str, kind: str, base_version: str | None, files: list[dict],
-                   window_dates: list[str], counts: dict, evaluation: dict, gate: dict, rounds: list[dict],
-                   notes: list[str], method: str) -> dict:
+                   window_dates: list[str], counts: dict, evaluation: Evaluation, gate: GateDecision,
+                   rounds: list[dict], notes: list[str], method: str) -> dict:
+    """The manifest of the version trained on ``run_date``: its inputs (files with sizes and hashes, the
+    window's dates, the base version), config hash, code version, counts, held-out errors under
+    ``metrics`` (``Evaluation.to_dict()``), the gate decision, training rounds and engine notes."""
     start, end = window_bounds(run_date, cfg.window.days)
     return {
         "run_date": run_date,
@@ -46,8 +51,8 @@ def build_manifest(cfg: Config, run_date: str, kind: str, base_version: str | No
         "counts": counts,
         "config_hash": cfg.digest(),
         "code_version": code_version(),
-        "metrics": evaluation,
-        "gate": gate,
+        "metrics": evaluation.to_dict(),
+        "gate": gate.to_dict(),
         "training_rounds": rounds,
         "engine_notes": notes,
     }

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import shutil
 
 import numpy as np
@@ -54,6 +55,12 @@ def test_three_nights_publish_three_versions_with_sane_outputs(three_nights):
         assert (ws.reports / f"{m['run_date']}.html").exists()
     ledger = read_ledger(ws)
     assert list(ledger["status"]) == ["done"] * 3
+    # one row per night, with the version, the gate's reason and every stage's time, as the flow returned
+    for out, (_, row) in zip(outs, ledger.iterrows()):
+        assert (row["version_id"], row["state"], row["message"]) == (out["version_id"], out["state"], out["message"])
+        assert row["message"] == out["gate"]["reason"] and row["rows_ingested"] == out["counts"]["rows_ingested"]
+        assert json.loads(row["durations_json"]) == out["durations"]
+        assert list(out["durations"]) == ["ingest", "window", "train", "evaluate", "predict", "publish", "report"]
 
 
 def test_debiased_candidate_beats_plain_shadow_on_demo(three_nights):

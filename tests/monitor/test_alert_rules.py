@@ -28,7 +28,7 @@ from tasks.monitor.alert_rules import (
     skew_alerts,
 )
 from tasks.config import Config, ConfigError
-from tasks.monitor.skew_metrics import compute_night_metrics
+from tasks.monitor.night_metrics import compute_night_metrics
 
 CFG = Config()
 

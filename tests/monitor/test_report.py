@@ -16,10 +16,14 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from tasks.monitor.alert_delivery import append_history, night_alerts, raise_alerts
-from tasks.monitor.metrics_store import MetricsStoreError, night_row, write_night_metrics
+from handmade import model_errors
+from tasks.evaluate.evaluation import Evaluation
+from tasks.monitor.alert_delivery import Channels
+from tasks.monitor.alert_history import AlertHistory, append_history, night_alerts, read_history
+from tasks.monitor.metrics_store import MetricsStoreError, read_metrics, row_of, write_night_metrics
+from tasks.monitor.night_metrics import compute_night_metrics
+from tasks.monitor.night_report import alert_night
 from tasks.monitor.report import render_report, summary_markdown, summary_table
-from tasks.monitor.skew_metrics import compute_night_metrics
 
 EVIL_MEMBER = 'member-<script>alert("boo")</script>\'q'
 EVIL_VERSION = 'v-"><script>alert(1)</script>'
@@ -51,15 +55,8 @@ def stored_nights(ws, cfg):
         frames.append(_night_ratings(rng, date, jump=1.2 if date == DATES[-1] else 0.0))
         window = pd.concat(frames, ignore_index=True)
         live = None if i == 0 else rng.normal(3.5, 0.5, 500)
-        evaluation = {
-            "candidate": {"mae": 0.8 - 0.01 * i, "mae_lo": 0.75 - 0.01 * i, "mae_hi": 0.85 - 0.01 * i,
-                          "rmse": 1.0, "rmse_lo": 0.95, "rmse_hi": 1.05, "n": 120,
-                          "segments": {"up": {"mae": 0.9}, "neutral": {"mae": 0.7}}},
-            "shadow": {"mae": 0.82, "mae_lo": 0.77, "mae_hi": 0.87, "rmse": 1.02, "rmse_lo": 0.97,
-                       "rmse_hi": 1.07, "n": 120},
-            "live": None if i == 0 else {"mae": 0.81, "mae_lo": 0.76, "mae_hi": 0.86, "rmse": 1.0,
-                                         "rmse_lo": 0.95, "rmse_hi": 1.05, "n": 120},
-        }
+        evaluation = Evaluation(candidate=model_errors(0.8 - 0.01 * i, segments={"up": (0.9, 30), "neutral": (0.7, 40)}),
+                                shadow=model_errors(0.82, rmse=1.02), live=None if i == 0 else model_errors(0.81))
         row = compute_night_metrics(
             date, window, cfg.scale, cfg.evaluate.skew_margin,
             probe_errors=pd.Series(rng.gamma(4.0, 0.2, 40)), reference_shares=[0.1, 0.14],
@@ -71,7 +68,8 @@ def stored_nights(ws, cfg):
                      "new_users": 2, "new_items": 7},
             versions={"candidate": EVIL_VERSION, "live": "v-2024-06-01"})
         write_night_metrics(ws, row)
-        raise_alerts(ws, date, cfg, env={})
+        series = read_metrics(ws)
+        alert_night(cfg, row_of(series, date, ws.metrics), series, AlertHistory.read(ws), "nightly", Channels(), env={})
     # an alert whose text carries markup (as if an upstream id leaked into it)
     append_history(ws, {"alert_id": "probe_coverage_low-2024-06-08", "kind": "probe_coverage_low",
                         "severity": "critical", "metric": "probe_coverage", "value": 0.001, "band": [0.005, None],
@@ -92,7 +90,7 @@ def test_report_escapes_ids_and_carries_the_numbers(stored_nights, cfg):
     assert "<script>alert" not in html and "<img src=x" not in html
     assert "<script" not in html.lower()  # the page has no scripts at all
     # the night's numbers and the alert are there
-    row = night_row(stored_nights, DATES[-1])
+    row = row_of(read_metrics(stored_nights), DATES[-1], stored_nights.metrics)
     assert f"{row['skew_mean_shift']:+.3f}" in html
     assert "skew_shift" in html and "probe_coverage_low" in html
     assert html.count('src="data:image/svg+xml;base64,') == 4  # histograms, skew trend, predictions, MAE
@@ -135,8 +133,8 @@ def test_missing_night_is_named(ws, cfg):
 
 
 def test_summary_helpers_escape_and_summarise(stored_nights):
-    row = night_row(stored_nights, DATES[-1])
-    alerts = night_alerts(stored_nights, DATES[-1])
+    row = row_of(read_metrics(stored_nights), DATES[-1], stored_nights.metrics)
+    alerts = night_alerts(read_history(stored_nights), DATES[-1])
     md = summary_markdown(row, alerts)
     assert "<script>" not in md and "\\<script\\>" in md
     assert md.startswith(f"# tarewise night {DATES[-1].replace('-', chr(92) + '-')}")
@@ -176,34 +174,3 @@ def test_report_renders_in_headless_chromium(stored_nights, cfg, tmp_path):
                     tmp_path / "profile-shot")
     assert res.returncode == 0 and shot.exists()
     assert shot.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n" and shot.stat().st_size > 50_000
-
-
-# ----------------------------------------------------------------------------------------------
-# The stored metrics series the report is built from
-# ----------------------------------------------------------------------------------------------
-
-def test_metrics_store_replaces_a_rerun_date_and_keeps_order(ws):
-    from tasks.monitor.metrics_store import prune_metrics, read_metrics
-
-    write_night_metrics(ws, {"run_date": "2024-06-02", "skew_mean_shift": 0.2})
-    write_night_metrics(ws, {"run_date": "2024-06-01", "skew_mean_shift": 0.1})
-    write_night_metrics(ws, {"run_date": "2024-06-02", "skew_mean_shift": 0.25, "skew_test": "chi2"})
-    m = read_metrics(ws)
-    assert m["run_date"].tolist() == ["2024-06-01", "2024-06-02"]
-    assert m["skew_mean_shift"].tolist() == [0.1, 0.25] and m.loc[1, "skew_test"] == "chi2"
-    assert read_metrics(ws, until="2024-06-01")["run_date"].tolist() == ["2024-06-01"]
-    assert prune_metrics(ws, before="2024-06-02") == 1
-    assert read_metrics(ws)["run_date"].tolist() == ["2024-06-02"]
-
-
-def test_metrics_store_refuses_bad_rows_and_names_a_bad_file(ws):
-    with pytest.raises(MetricsStoreError, match="not_a_metric"):
-        write_night_metrics(ws, {"run_date": "2024-06-01", "not_a_metric": 1.0})
-    with pytest.raises(MetricsStoreError, match="YYYY-MM-DD"):
-        write_night_metrics(ws, {"run_date": "06/01/2024"})
-    with pytest.raises(MetricsStoreError, match="skew_organic_n"):
-        write_night_metrics(ws, {"run_date": "2024-06-01", "skew_organic_n": "many"})
-    ws.metrics.parent.mkdir(parents=True, exist_ok=True)
-    ws.metrics.write_bytes(b"this is not parquet")
-    with pytest.raises(MetricsStoreError, match=str(ws.metrics)):
-        write_night_metrics(ws, {"run_date": "2024-06-01"})

@@ -170,7 +170,7 @@ def test_retention_ages_out_quarantine_and_metrics_by_days(ops):
 
 
 def test_status_shows_live_runs_and_the_weeks_alerts(ops):
-    from tasks.monitor.alert_delivery import append_history
+    from tasks.monitor.alert_history import append_history
 
     ws, args = ops
     live = versions.live_version(ws)

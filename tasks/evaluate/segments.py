@@ -1,0 +1,93 @@
+"""Selection-skew segments of users: who rates organically above, below or like their probe ratings.
+
+The gate judges the candidate per segment and the drift report describes the segments, so they live
+here, before both: the evaluate stage computes them, the monitor stage reuses them. Pure functions over
+a ratings window (user_id, item_id, rating in stars, source "organic"/"probe", dt); no I/O.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from tasks.schemas import ORGANIC, PROBE
+
+#: Segment names of :func:`user_skew_segments`, in display order.
+SEGMENTS = ("up", "down", "neutral", "unknown")
+
+WINDOW_COLUMNS = ("user_id", "item_id", "rating", "source", "dt")
+
+
+def check_window(window: pd.DataFrame, needed: Sequence[str] = WINDOW_COLUMNS) -> None:
+    """Raise ``ValueError`` naming the missing columns when ``window`` lacks any of ``needed``."""
+    missing = [c for c in needed if c not in window.columns]
+    if missing:
+        raise ValueError(f"ratings window lacks column(s) {missing}; has {list(window.columns)}")
+
+
+@dataclass(frozen=True)
+class RatingsByUser:
+    """A ratings window as row arrays, each of shape ``(rows,)``: ``codes`` is the row's position in the
+    sorted ``users`` index, ``rating`` in stars, ``is_organic`` / ``is_probe`` boolean masks."""
+
+    codes: np.ndarray
+    users: pd.Index
+    rating: np.ndarray
+    is_organic: np.ndarray
+    is_probe: np.ndarray
+
+    @classmethod
+    def of(cls, window: pd.DataFrame) -> RatingsByUser:
+        codes, users = pd.factorize(window["user_id"], sort=True)
+        return cls(codes=codes, users=pd.Index(users), rating=window["rating"].to_numpy(dtype=float),
+                   is_organic=(window["source"] == ORGANIC).to_numpy(dtype=bool),
+                   is_probe=(window["source"] == PROBE).to_numpy(dtype=bool))
+
+    def per_user(self) -> pd.DataFrame:
+        """Per-user counts and means (see :func:`user_skew`), one row per entry of ``users``."""
+        n = len(self.users)
+        out = {}
+        for mask, name in ((self.is_organic, "organic"), (self.is_probe, "probe")):
+            count = np.bincount(self.codes[mask], minlength=n)
+            total = np.bincount(self.codes[mask], weights=self.rating[mask], minlength=n)
+            out[f"{name}_n"] = count
+            out[f"{name}_mean"] = np.where(count > 0, total / np.maximum(count, 1), np.nan)
+        frame = pd.DataFrame(out, index=pd.Index(self.users, name="user_id"))
+        frame["skew"] = frame["organic_mean"] - frame["probe_mean"]
+        return frame
+
+
+def user_skew(window: pd.DataFrame) -> pd.DataFrame:
+    """Per-user organic and probe rating counts and means over ``window``.
+
+    Returns a frame indexed by ``user_id`` (sorted) with columns ``organic_n``, ``organic_mean``,
+    ``probe_n``, ``probe_mean`` and ``skew`` = organic mean minus probe mean in stars (NaN unless the
+    user has both kinds of rating).
+    """
+    check_window(window, ("user_id", "rating", "source"))
+    return RatingsByUser.of(window).per_user()
+
+
+def segment_of(skew: pd.Series | np.ndarray, margin: float) -> np.ndarray:
+    """Segment label per skew value: "up" above ``margin``, "down" below ``-margin``, else
+    "neutral"; NaN skew (no probe or no organic rating) is "unknown"."""
+    s = np.asarray(skew, dtype=float)
+    out = np.full(s.shape, "neutral", dtype=object)
+    out[s > margin] = "up"
+    out[s < -margin] = "down"
+    out[np.isnan(s)] = "unknown"
+    return out
+
+
+def user_skew_segments(window: pd.DataFrame, margin: float) -> pd.Series:
+    """Segment of every user in ``window`` by their selection skew (``cfg.evaluate.skew_margin`` stars).
+
+    Returns a Series indexed by ``user_id`` (sorted), named ``segment``, with values "up" (organic mean
+    exceeds probe mean by more than ``margin``), "down" (falls short by more), "neutral", or "unknown"
+    (no probe rating or no organic rating in the window).
+    """
+    per_user = user_skew(window)
+    return pd.Series(segment_of(per_user["skew"], margin), index=per_user.index, name="segment")

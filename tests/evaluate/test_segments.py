@@ -1,0 +1,48 @@
+"""Per-member selection skew and its segments, worked by hand on a small window (tests/handmade.py).
+
+Invented library-app scenario (members rate titles 1-5 stars); all numbers are invented.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+
+from handmade import member_window
+from tasks.evaluate.segments import SEGMENTS, RatingsByUser, segment_of, user_skew, user_skew_segments
+
+
+def test_user_skew_and_segments_by_hand():
+    w = member_window()
+    per = user_skew(w)
+    assert per.loc["member-000001", "skew"] == pytest.approx(14 / 3 - 3)
+    assert per.loc["member-000002", "skew"] == pytest.approx(-2.0)
+    assert math.isnan(per.loc["member-000004", "skew"]) and math.isnan(per.loc["member-000005", "skew"])
+    seg = user_skew_segments(w, margin=0.5)
+    assert seg.to_dict() == {"member-000001": "up", "member-000002": "down", "member-000003": "neutral",
+                             "member-000004": "unknown", "member-000005": "unknown"}
+    assert set(seg) <= set(SEGMENTS)
+    # a smaller margin moves member-000003 (+0.5) to "up"
+    assert user_skew_segments(w, margin=0.4)["member-000003"] == "up"
+
+
+def test_segment_of_edges():
+    # exactly at the margin is neutral on both sides; NaN (one kind of rating missing) is unknown
+    assert segment_of(np.array([0.5, -0.5, 0.51, -0.51, np.nan, 0.0]), 0.5).tolist() == [
+        "neutral", "neutral", "up", "down", "unknown", "neutral"]
+
+
+def test_ratings_by_user_counts_and_means():
+    r = RatingsByUser.of(member_window())
+    assert list(r.users) == [f"member-00000{i}" for i in range(1, 6)]
+    per = r.per_user()
+    assert per["organic_n"].tolist() == [3, 2, 2, 1, 0] and per["probe_n"].tolist() == [1, 2, 1, 0, 1]
+    assert per.loc["member-000002", "probe_mean"] == pytest.approx(3.5)
+    assert math.isnan(per.loc["member-000005", "organic_mean"])
+
+
+def test_missing_column_is_named():
+    with pytest.raises(ValueError, match=r"lacks column\(s\) \['source'\]"):
+        user_skew(member_window().drop(columns="source"))
