@@ -17,7 +17,7 @@ from tasks.engine.checkpoint import Checkpoint
 from tasks.evaluate import evaluation
 from tasks.ingest import logs as ingest
 from tasks.ingest import store
-from tasks.operate import shared_copy
+from tasks.operate import shared_copy, shared_restore
 from tasks.publish import predictions
 from tasks.publish import versions
 from tasks.train import training
@@ -141,12 +141,12 @@ def publish_version(cfg: Config, version_id: str, candidate: Checkpoint, shadow:
 
 
 @task(name="restore-from-shared-copy", **IO)
-def restore_shared(cfg: Config) -> shared_copy.RestoreResult | None:
+def restore_shared(cfg: Config) -> shared_restore.RestoreResult | None:
     """A workspace that has never run starts from the shared copy (``paths.shared``); else nothing."""
     ws = Workspace.at(cfg.paths.workspace)
-    if not shared_copy.is_new(ws):
+    if not shared_restore.is_new(ws):
         return None
-    result = shared_copy.restore(ws, shared_copy.SharedCopy.at(cfg.paths.shared, ws))
+    result = shared_restore.restore(ws, shared_copy.SharedCopy.at(cfg.paths.shared, ws))
     get_run_logger().info(result.summary())
     return result
 

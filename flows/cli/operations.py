@@ -141,7 +141,7 @@ def restore(config: Optional[Path] = ConfigOpt, workspace: Optional[str] = Works
     has never run does this by itself.)"""
     cfg = load(config, None, workspace, shared)
     from tasks.lock import workspace_lock
-    from tasks.operate.shared_copy import restore as do_restore
+    from tasks.operate.shared_restore import restore as do_restore
     with _shared_copy_command(cfg, "restore") as (ws, target):
         with workspace_lock(ws.lock, "restore from the shared copy", cfg.runtime.lock_stale_seconds):
             console.print(do_restore(ws, target).summary(), highlight=False)

@@ -27,7 +27,8 @@ this workspace's journal says it copied are ever deleted from the shared copy: a
 pointed at a full shared copy deletes nothing.
 
 One writer per shared copy (the lock is local to the writing machine); any number of readers.
-No Prefect here: the flows call :func:`push` and :func:`restore` through ``tasks/steps.py``.
+No Prefect here: the flows call :func:`push` and ``shared_restore.restore`` through ``tasks/steps.py``;
+the way back (a new workspace starting from the copy, readers elsewhere) is ``tasks/operate/shared_restore.py``.
 """
 
 from __future__ import annotations
@@ -42,7 +43,6 @@ from pathlib import Path
 
 import pyarrow as pa
 import pyarrow.fs as pafs
-import pyarrow.parquet as pq
 
 from tasks import failpoints
 from tasks.publish import versions
@@ -383,95 +383,9 @@ def push(ws: Workspace, shared: SharedCopy, take_over: bool = False) -> PushResu
                       versions.live_version(ws))
 
 
-@dataclass(frozen=True)
-class RestoreResult:
-    uri: str
-    files: int
-    versions: list[str]
-    live: str | None
-
-    def summary(self) -> str:
-        if not self.files:
-            return f"shared copy {self.uri}: nothing to restore"
-        return (f"restored {self.files} file(s) from {self.uri}: {len(self.versions)} version(s), "
-                f"live {self.live or 'none'}")
-
-
-def restore(ws: Workspace, shared: SharedCopy) -> RestoreResult:
-    """Copy into the workspace every file of the shared copy that the workspace lacks. Call it holding
-    the workspace lock.
-
-    Nothing local is overwritten. A version is restored only when its manifest is on the shared copy
-    (a whole version), into a staging folder renamed into place as when it was published; the live
-    pointer only when the workspace has none and the version it names is now here. Restored files are
-    journalled as copied, so the next :func:`push` does not send them back.
-    """
-    remote = shared.listing()
-    journal = Journal.read(ws, shared.uri)
-    whole = {_version_of(r) for r in remote if _is_manifest(r)}
-    wanted = [r for r in remote if _belongs(r) and r != POINTER and not (ws.root / r).exists()]
-    by_version: dict[str, list[str]] = {}
-    plain = []
-    for rel in wanted:
-        vid = _version_of(rel)
-        if vid is None:
-            plain.append(rel)
-        elif vid in whole and not (ws.versions / vid).exists():
-            by_version.setdefault(vid, []).append(rel)
-    copied: list[str] = []
-    for rel in sorted(plain, key=_rank):
-        shared.get(rel, ws.root / rel)
-        copied.append(rel)
-    for vid, rels in sorted(by_version.items()):
-        staging = ws.versions / f".staging-{vid}"
-        shutil.rmtree(staging, ignore_errors=True)
-        for rel in rels:
-            shared.get(rel, staging / rel.split("/", 2)[2])
-        os.rename(staging, ws.versions / vid)
-        copied.extend(rels)
-    live = None
-    if POINTER in remote and not ws.live_pointer.exists():
-        pointer = shared.read_bytes(POINTER)     # one read: the bytes checked are the bytes written
-        vid = json.loads(pointer).get("version_id")
-        if vid and (ws.versions / vid / "manifest.json").exists():
-            atomic_write_bytes(ws.live_pointer, pointer)
-            copied.append(POINTER)
-            journal.pointer = _sha256(pointer)
-            live = vid
-    for rel in copied:
-        st = (ws.root / rel).stat()
-        journal.files[rel] = [st.st_size, st.st_mtime_ns]
-    if copied:
-        journal.write(ws)
-    return RestoreResult(shared.uri, len(copied), sorted(by_version), live or versions.live_version(ws))
-
-
 def _belongs(rel: str) -> bool:
     """Is ``rel`` (a path on the shared copy) one of the files a workspace copies there?"""
     if rel in FILES:
         return True
     parts = rel.split("/")
     return parts[0] in FOLDERS and len(parts) > 1 and not any(p.startswith(".") for p in parts)
-
-
-def is_new(ws: Workspace) -> bool:
-    """A workspace that has never run a night (no ledger): the case where a night restores first."""
-    return not ws.ledger.exists()
-
-
-def read_live_predictions(uri: str) -> tuple[str, pa.Table]:
-    """For a consumer elsewhere: the live version id and its predictions, read from the shared copy
-    alone (``live.json``, then that version's ``predictions.parquet``; columns ``schemas.PREDICTIONS``)."""
-    shared = SharedCopy.at(uri)
-    try:
-        pointer = json.loads(shared.read_bytes(POINTER))
-    except FileNotFoundError:
-        raise SharedCopyError(f"{uri}: no {POINTER} yet (no night has been copied here)") from None
-    vid = pointer.get("version_id")
-    if not vid:
-        raise SharedCopyError(f"{uri}: {POINTER} names no live version")
-    rel = f"versions/{vid}/predictions.parquet"
-    try:
-        return vid, pq.read_table(shared.path(rel), filesystem=shared.fs)
-    except (OSError, pa.ArrowException) as exc:
-        raise SharedCopyError(f"paths.shared = {uri!r}: could not read {rel}: {exc}") from exc

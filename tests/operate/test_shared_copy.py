@@ -20,6 +20,7 @@ import pytest
 
 from tasks.config import ConfigError, load_config
 from tasks.operate import shared_copy as sc
+from tasks.operate import shared_restore as sr
 from tasks.publish import versions
 from tasks.workspace import Workspace
 
@@ -83,7 +84,7 @@ def test_a_night_leaves_an_exact_copy_and_readers_get_the_live_predictions(first
     assert shared == local                          # same files, same bytes
     assert not any(k.startswith(("prefect-results/", "lock", sc.JOURNAL)) for k in shared)
 
-    live, table = sc.read_live_predictions((first_night / "shared").as_uri())
+    live, table = sr.read_live_predictions((first_night / "shared").as_uri())
     assert live == versions.live_version(ws)
     assert table.equals(pq.read_table(ws.versions / live / "predictions.parquet"))
 
@@ -115,13 +116,13 @@ def test_a_fresh_workspace_restores_and_its_next_night_equals_the_original(first
     import pandas as pd
     ledger_c = pd.read_parquet(ws_c.ledger)
     assert list(ledger_c["run_date"]) == NIGHTS[:2] and set(ledger_c["status"]) == {"done"}
-    assert sc.read_live_predictions(uri)[0] == out_c["version_id"]
+    assert sr.read_live_predictions(uri)[0] == out_c["version_id"]
 
     # A also copied night 1 there, but C has written since: A is refused, naming the fix.
     target = sc.SharedCopy.at(uri, ws_a)
     with pytest.raises(sc.SharedCopyRefused, match="not written by this workspace.*--take-over"):
         sc.push(ws_a, target)
-    assert sc.read_live_predictions(uri)[0] == out_c["version_id"]     # untouched
+    assert sr.read_live_predictions(uri)[0] == out_c["version_id"]     # untouched
     # Taking over makes the shared copy exactly A's (same version ids: A's files replace C's).
     sc.push(ws_a, target, take_over=True)
     shared = _tree(tmp_path / "shared")
@@ -149,7 +150,7 @@ def test_retention_removes_pruned_versions_from_the_shared_copy_never_the_live_o
     older = next(v for v in local if v != versions.live_version(ws))
     res = CliRunner().invoke(app, ["rollback", "--to", older, "--workspace", str(ws.root), "--shared", uri])
     assert res.exit_code == 0, res.output
-    assert sc.read_live_predictions(uri)[0] == versions.live_version(ws) == older
+    assert sr.read_live_predictions(uri)[0] == versions.live_version(ws) == older
 
 
 def test_a_night_killed_before_the_pointer_leaves_the_old_live_version_whole(prefect_harness, first_night, tmp_path):
@@ -165,7 +166,7 @@ def test_a_night_killed_before_the_pointer_leaves_the_old_live_version_whole(pre
     new = versions.live_version(ws)
     assert new != before                           # the night itself finished here
     # The shared copy's readers still get the previous version, and it is whole there.
-    assert sc.read_live_predictions(uri)[0] == before
+    assert sr.read_live_predictions(uri)[0] == before
     shared = _tree(tmp_path / "shared")
     for rel in sc.local_files(ws):
         if rel.startswith(f"versions/{before}/"):
@@ -175,7 +176,7 @@ def test_a_night_killed_before_the_pointer_leaves_the_old_live_version_whole(pre
     from flows.cli import app
     res = CliRunner().invoke(app, ["share", "--workspace", str(ws.root), "--shared", uri])
     assert res.exit_code == 0, res.output
-    assert sc.read_live_predictions(uri)[0] == new
+    assert sr.read_live_predictions(uri)[0] == new
     assert _tree(tmp_path / "shared") == _local_tree(ws)
 
 
@@ -204,12 +205,12 @@ def test_the_object_store_path_round_trips_and_restore_skips_partial_versions(fi
             dest.write_bytes((scratch.root / rel).read_bytes())
     # ... a fresh workspace restores the whole one and leaves the partial one out.
     fresh = Workspace.at(tmp_path / "ws-fresh")
-    restored = sc.restore(fresh, target)
+    restored = sr.restore(fresh, target)
     assert restored.versions == [live] and restored.live == live
     assert versions.live_version(fresh) == live and not (fresh.versions / partial).exists()
     assert _local_tree(fresh) == _local_tree(scratch)
     assert sc.plan_push(fresh, target).uploads == []       # restored files are journalled as copied
-    assert sc.restore(fresh, target).files == 0              # nothing missing any more
+    assert sr.restore(fresh, target).files == 0              # nothing missing any more
 
 
 def test_bad_shared_settings_are_refused_naming_the_key(tmp_path):
@@ -220,7 +221,7 @@ def test_bad_shared_settings_are_refused_naming_the_key(tmp_path):
     with pytest.raises(sc.SharedCopyRefused, match="overlaps the workspace"):
         sc.SharedCopy.at(str(tmp_path / "ws" / "copy"), Workspace.at(tmp_path / "ws"))
     with pytest.raises(sc.SharedCopyError, match="no live.json yet"):
-        sc.read_live_predictions((tmp_path / "empty").as_uri())
+        sr.read_live_predictions((tmp_path / "empty").as_uri())
 
     from typer.testing import CliRunner
     from flows.cli import app
@@ -248,7 +249,7 @@ def test_a_backfill_on_a_new_machine_resumes_where_the_shared_copy_ends(first_ni
     assert [s["run_date"] for s in out["skipped"]] == [NIGHTS[0]]
     assert [n["run_date"] for n in out["nights"]] == NIGHTS[1:]
     ws = Workspace.at(tmp_path / "ws-new")
-    assert sc.read_live_predictions(uri)[0] == out["live_version"] == versions.live_version(ws)
+    assert sr.read_live_predictions(uri)[0] == out["live_version"] == versions.live_version(ws)
     assert _tree(tmp_path / "shared") == _local_tree(ws)
 
 
@@ -261,7 +262,7 @@ def test_restore_and_share_commands(first_night, tmp_path):
     res = CliRunner().invoke(app, ["restore", "--workspace", str(fresh), "--shared", uri])
     assert res.exit_code == 0, res.output
     assert "restored" in res.output
-    assert versions.live_version(Workspace.at(fresh)) == sc.read_live_predictions(uri)[0]
+    assert versions.live_version(Workspace.at(fresh)) == sr.read_live_predictions(uri)[0]
     res = CliRunner().invoke(app, ["share", "--dry-run", "--workspace", str(fresh), "--shared", uri])
     assert res.exit_code == 0 and "0 file(s) to copy" in res.output, res.output
 
@@ -305,10 +306,10 @@ def test_nights_over_the_s3_protocol(prefect_harness, first_night, tmp_path, s3_
     # The bucket holds exactly the workspace's files, byte for byte; the pruned night-1 version is gone.
     assert _s3_tree(target) == _local_tree(ws)
     assert not any(rel.startswith("versions/v20261101-") for rel in target.listing())
-    live, table = sc.read_live_predictions(uri)
+    live, table = sr.read_live_predictions(uri)
     assert live == versions.live_version(ws)
     assert table.equals(pq.read_table(ws.versions / live / "predictions.parquet"))
     # A new machine restores from the bucket alone.
     fresh = Workspace.at(tmp_path / "ws-new")
-    assert sc.restore(fresh, target).live == live
+    assert sr.restore(fresh, target).live == live
     assert _local_tree(fresh) == _local_tree(ws)
