@@ -29,7 +29,7 @@ def _times_and_ratings_cast(res) -> None:
     assert res.valid["rating"].tolist() == [3.0, 4.0, 5.0]
 
 
-ODD_IDS = ["<script>alert('x')</script>", 'O\'Brien "the reader"', "名前-é-ß", "📚 audio; DROP TABLE", " padded "]
+ODD_IDS = ["<script>alert('x')</script>", 'O\'Brien "the reader"', "名前-é-ß", "📚 audio; DROP TABLE", "inner  blanks"]
 
 
 CASES = {
@@ -100,3 +100,4 @@ CASES = {
 @pytest.mark.parametrize("name", list(CASES))
 def test_bad_input_corpus(name: str, logs: Path) -> None:
     run_case(CASES[name], logs)
+
