@@ -101,3 +101,14 @@ CASES = {
 def test_bad_input_corpus(name: str, logs: Path) -> None:
     run_case(CASES[name], logs)
 
+
+def test_two_canonical_columns_mapped_to_one_source_column_are_refused() -> None:
+    """user = item on every stored row would pass every row check: the config refuses it, naming both keys."""
+    from tasks.config import Config, ConfigError, parse_config
+
+    with pytest.raises(ConfigError, match=r"input\.columns\.user_id and input\.columns\.item_id both name the "
+                                          r"column 'id'"):
+        parse_config({"input": {"columns": {"user_id": "id", "item_id": "id"}}}, source="night.toml")
+    with pytest.raises(ConfigError, match=r"input\.columns\.rating and input\.columns\.source both name the "
+                                          r"column 'rating'"):
+        Config().updated({"input.columns.source": "rating"})
