@@ -45,7 +45,7 @@ class PointerDamaged(VersionError):
     """``live.json`` exists but is not a readable pointer (garbage, empty, torn by a full disk)."""
 
     def __init__(self, path: Path, detail: str) -> None:
-        self.path = path
+        self.path, self.detail = path, detail
         super().__init__(f"the live pointer {path} is damaged ({detail}), so which version is live is unknown; "
                          "`tarewise status` names a whole version and `tarewise rollback --to <version>` writes "
                          "a new pointer (the damaged file is kept beside it)")
