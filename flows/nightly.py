@@ -37,10 +37,11 @@ class _Clock:
 
 @flow(name="tarewise-nightly")
 def nightly(cfg: Config, run_date: str | None = None, kind: str = "nightly", make_live: bool = True,
-            take_lock: bool = True, base_from: str | None = None) -> dict:
+            take_lock: bool = True, base_from: str | None = None, cold: bool = False) -> dict:
     """One night. ``make_live=False`` publishes without switching live (backfill's middle nights);
     ``take_lock=False`` when a parent flow (backfill) already holds the workspace lock; ``base_from``
-    warm-starts from that version's chain instead of the live one (see ``versions.base_for_date``)."""
+    warm-starts from that version's chain instead of the live one (see ``versions.base_for_date``);
+    ``cold`` starts from scratch (a damaged base is otherwise refused)."""
     ws = Workspace.at(cfg.paths.workspace)
     run_date = run_date or yesterday(cfg.runtime.timezone)
     if take_lock:
@@ -50,8 +51,8 @@ def nightly(cfg: Config, run_date: str | None = None, kind: str = "nightly", mak
             # Holding the lock, no other run of this workspace is alive: "running" rows are dead runs.
             for run_id in ledger.mark_interrupted(ws):
                 get_run_logger().warning("run %s never finished (killed or crashed); marked interrupted", run_id)
-            return _night(cfg, ws, run_date, kind, make_live, base_from)
-    return _night(cfg, ws, run_date, kind, make_live, base_from)
+            return _night(cfg, ws, run_date, kind, make_live, base_from, cold)
+    return _night(cfg, ws, run_date, kind, make_live, base_from, cold)
 
 
 def nightly_for(cfg: Config, dask_address: str | None = None, **options):
@@ -63,8 +64,9 @@ def nightly_for(cfg: Config, dask_address: str | None = None, **options):
                                 timeout_seconds=cfg.runtime.flow_timeout_seconds, **options)
 
 
-def _night(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool, base_from: str | None) -> dict:
-    out = _work(cfg, ws, run_date, kind, make_live, base_from)
+def _night(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool, base_from: str | None,
+           cold: bool = False) -> dict:
+    out = _work(cfg, ws, run_date, kind, make_live, base_from, cold)
     if cfg.paths.shared:
         out["shared"] = push_to_shared(cfg, f"night {run_date} is {out['status']} here"
                                        + (f" (version {out['version_id']}, {out['state']})"
@@ -87,7 +89,8 @@ def push_to_shared(cfg: Config, done: str) -> dict:
                               "The next night, or `tarewise share`, catches up.") from exc
 
 
-def _work(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool, base_from: str | None) -> dict:
+def _work(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool, base_from: str | None,
+          cold: bool = False) -> dict:
     log = get_run_logger()
     for name in versions.clean_staging(ws):
         log.warning("removed half-written version %s left by an interrupted run", name)
@@ -112,7 +115,7 @@ def _work(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool,
                               rows_quarantined=counts["rows_quarantined"], durations=clock.durations,
                               message=message)
             return {"run_date": run_date, "status": "skipped", "version_id": None, "message": message}
-        base_id, base, base_shadow = steps.with_io_retries(steps.load_base, cfg)(cfg, run_date, base_from)
+        base_id, base, base_shadow = steps.with_io_retries(steps.load_base, cfg)(cfg, run_date, base_from, cold)
         clock.lap("window")
         night = steps.train(cfg, window, base, base_shadow)
         clock.lap("train")
