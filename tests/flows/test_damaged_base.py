@@ -99,3 +99,21 @@ def test_run_cold_starts_from_scratch_past_a_damaged_base(copy) -> None:
     new = versions.live_version(ws)
     assert new != live and versions.read_manifest(ws, new)["base_version"] is None
     assert versions.read_manifest(ws, new)["counts"]["new_users"] == len(versions.load_checkpoint(ws, new).users)
+
+
+@pytest.mark.parametrize("content", [b"", b"\x00\x00garbage"])
+def test_a_run_names_a_damaged_live_pointer_and_a_cold_run_replaces_it(copy, content: bytes) -> None:
+    from flows.cli import app
+
+    cfg, ws, toml = copy
+    ws.live_pointer.write_bytes(content)
+    args = ["run", "--date", "2026-11-02", "--config", str(toml), "--logs", cfg.paths.logs, "--workspace", str(ws.root)]
+    refused = CliRunner().invoke(app, args)
+    assert refused.exit_code == 1
+    text = " ".join(refused.output.split())
+    assert f"run failed: PointerDamaged: the live pointer {ws.live_pointer} is damaged" in text
+    assert "JSONDecodeError" not in text and "Traceback" not in text
+    assert ledger.read_ledger(ws).iloc[-1]["message"].startswith(f"PointerDamaged: the live pointer {ws.live_pointer}")
+    cold = CliRunner().invoke(app, [*args, "--cold"])
+    assert cold.exit_code == 0, cold.output
+    assert versions.read_pointer(ws)["history"][-1]["replaced_damaged_pointer"].startswith(str(ws.live_pointer))
