@@ -7,31 +7,13 @@ from __future__ import annotations
 import shutil
 
 import pytest
+from fast_config import FAST_TOML
 from typer.testing import CliRunner
 
 from tasks import ledger
 from tasks.config import load_config
 from tasks.publish import versions
 from tasks.workspace import Workspace
-
-FAST_TOML = """
-[model]
-dim = 4
-max_epochs = 6
-finetune_epochs = 2
-
-[evaluate]
-bootstrap = 20
-
-[gate]
-tolerance_mae = 1.0
-max_segment_regression = 2.0
-min_heldout = 1
-
-[runtime]
-shadow = false
-timezone = "Europe/Berlin"
-"""
 
 
 @pytest.fixture(scope="module")

@@ -114,13 +114,13 @@ def test_damage_to_the_live_versions_files_is_named_with_the_fix(two, damage: st
         path.write_bytes(b"\0" * path.stat().st_size)
     else:
         path.unlink()
+    out = _cli("status", *args)
+    assert out.exit_code == 1 and f"live: {second}" in out.output
+    assert says in _flat(out.output)
     found = diagnose(ws, 3600)
     assert [f.severity for f in found] == [PROBLEM]
     assert says in found[0].what and str(ws.versions / second) in found[0].what
     assert found[0].fix.startswith(f"`tarewise rollback --to {first}`")
-    out = _cli("status", *args)
-    assert out.exit_code == 1 and f"live: {second}" in out.output
-    assert says in _flat(out.output)
     # Rolling back to the damaged version itself is refused, naming the damage.
     _cli("rollback", "--to", first, *args)
     refused = _cli("rollback", "--to", second, *args)
