@@ -61,51 +61,24 @@ def _none(arr: pa.ChunkedArray) -> np.ndarray:
 def id_masks(ids: pa.ChunkedArray, not_whole: np.ndarray, max_len: int) -> dict[str, np.ndarray]:
     """Boolean ``[rows]`` masks of refused ids, keyed by :data:`ID_CHECKS`: ``null`` (missing, empty or
     blanks only), ``type`` (``not_whole``, from :func:`as_text`), ``long`` (more than ``max_len``
-    characters), ``padded`` (blanks at the start or end of a real id). ``ids``: ``pa.string()`` text."""
-    nbytes, null, first, last = _edges(ids)
-    empty = (null | (nbytes == 0)) & ~not_whole
+    characters), ``padded`` (blanks at the start or end of a real id). ``ids``: ``pa.string()`` text.
+
+    Byte lengths before and after Arrow's trim decide blank and padded ids: about 20 ms per million ids
+    on 2 busy cores (measured; most of it the trim), no slower than a numpy pre-filter on each id's
+    first and last byte that was tried first.
+    """
+    nbytes = _filled(pc.binary_length(ids))
+    kept = _filled(pc.binary_length(pc.utf8_trim_whitespace(ids)))
+    null = pc.is_null(ids).to_numpy(zero_copy_only=False) if ids.null_count else np.zeros(len(ids), bool)
+    empty = (null | (kept == 0)) & ~not_whole
     # A character takes at least one byte, so only ids longer in bytes need counting in characters.
-    long = nbytes > max_len
+    long = ~empty & (nbytes > max_len)
     if long.any():
         rows = np.flatnonzero(long)
         long[rows] = pc.utf8_length(ids.take(pa.array(rows))).to_numpy(zero_copy_only=False) > max_len
-    # Blanks are ASCII control/space bytes or multi-byte characters: only ids whose first or last byte is
-    # one of those are trimmed to find out (usually none; every row for ids in a non-Latin script).
-    suspect = ~empty & ((first <= 0x20) | (first >= 0x80) | (last <= 0x20) | (last >= 0x80))
-    blank = np.zeros(len(nbytes), bool)
-    padded = np.zeros(len(nbytes), bool)
-    if suspect.any():
-        rows = np.flatnonzero(suspect)
-        trimmed = pc.utf8_length(pc.utf8_trim_whitespace(ids.take(pa.array(rows)))).to_numpy(zero_copy_only=False)
-        chars = pc.utf8_length(ids.take(pa.array(rows))).to_numpy(zero_copy_only=False)
-        blank[rows] = trimmed == 0
-        padded[rows] = (trimmed > 0) & (trimmed < chars)
-    return {"null": empty | blank, "type": not_whole, "long": long & ~blank, "padded": padded}
+    return {"null": empty, "type": not_whole, "long": long, "padded": ~empty & (kept < nbytes)}
 
 
-def _edges(col: pa.ChunkedArray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-    """(UTF-8 byte length, null mask, first byte, last byte) per row of a string column, read straight
-    from the offsets and data buffers (no per-row Python). Empty and null rows get byte 0x21 ('!')."""
-    parts: list[tuple[np.ndarray, ...]] = []
-    for chunk in col.chunks:
-        n = len(chunk)
-        if n == 0:
-            continue
-        null = chunk.is_null().to_numpy(zero_copy_only=False) if chunk.null_count else np.zeros(n, bool)
-        offsets_buf, data_buf = chunk.buffers()[1], chunk.buffers()[2]
-        if offsets_buf is None:   # e.g. an all-null column cast from the null type
-            zeros = np.zeros(n, np.int32)
-            parts.append((zeros, null, np.full(n, 0x21, np.uint8), np.full(n, 0x21, np.uint8)))
-            continue
-        offsets = np.frombuffer(offsets_buf, dtype=np.int32)[chunk.offset:chunk.offset + n + 1]
-        lengths = np.diff(offsets)
-        data = np.frombuffer(data_buf, dtype=np.uint8) if data_buf is not None else np.zeros(0, np.uint8)
-        has = lengths > 0
-        first = np.full(n, 0x21, np.uint8)
-        last = np.full(n, 0x21, np.uint8)
-        first[has] = data[offsets[:-1][has]]
-        last[has] = data[offsets[1:][has] - 1]
-        parts.append((lengths, null, first, last))
-    if not parts:
-        return np.zeros(0, np.int32), np.zeros(0, bool), np.zeros(0, np.uint8), np.zeros(0, np.uint8)
-    return tuple(np.concatenate(k) for k in zip(*parts))  # type: ignore[return-value]
+def _filled(lengths: pa.ChunkedArray) -> np.ndarray:
+    """Byte lengths as int64, 0 for nulls."""
+    return pc.fill_null(lengths, 0).to_numpy(zero_copy_only=False).astype(np.int64, copy=False)
