@@ -29,10 +29,11 @@ from tasks.workspace import Workspace
 
 @flow(name="tarewise-nightly")
 def nightly(cfg: Config, run_date: str | None = None, kind: str = "nightly", make_live: bool = True,
-            take_lock: bool = True, base_from: str | None = None) -> dict:
+            take_lock: bool = True, base_from: str | None = None, cold: bool = False) -> dict:
     """One night; returns ``NightRecord.to_dict()`` (``flows/night_record.py``). ``make_live=False`` publishes without switching live (backfill's middle nights);
     ``take_lock=False`` when a parent flow (backfill) already holds the workspace lock; ``base_from``
-    warm-starts from that version's chain instead of the live one (see ``versions.base_for_date``)."""
+    warm-starts from that version's chain instead of the live one (see ``versions.base_for_date``);
+    ``cold`` starts from scratch (a damaged base is otherwise refused)."""
     ws = Workspace.at(cfg.paths.workspace)
     run_date = run_date or yesterday(cfg.runtime.timezone)
     if take_lock:
@@ -42,8 +43,8 @@ def nightly(cfg: Config, run_date: str | None = None, kind: str = "nightly", mak
             # Holding the lock, no other run of this workspace is alive: "running" rows are dead runs.
             for run_id in ledger.mark_interrupted(ws):
                 get_run_logger().warning("run %s never finished (killed or crashed); marked interrupted", run_id)
-            return _night(cfg, ws, run_date, kind, make_live, base_from)
-    return _night(cfg, ws, run_date, kind, make_live, base_from)
+            return _night(cfg, ws, run_date, kind, make_live, base_from, cold)
+    return _night(cfg, ws, run_date, kind, make_live, base_from, cold)
 
 
 def nightly_for(cfg: Config, dask_address: str | None = None, **options):
@@ -55,8 +56,9 @@ def nightly_for(cfg: Config, dask_address: str | None = None, **options):
                                 timeout_seconds=cfg.runtime.flow_timeout_seconds, **options)
 
 
-def _night(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool, base_from: str | None) -> dict:
-    night = _work(cfg, ws, run_date, kind, make_live, base_from)
+def _night(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool, base_from: str | None,
+           cold: bool = False) -> dict:
+    night = _work(cfg, ws, run_date, kind, make_live, base_from, cold)
     if cfg.paths.shared:
         night.shared = push_to_shared(cfg, night.outcome())
     return night.to_dict()
@@ -77,7 +79,8 @@ def push_to_shared(cfg: Config, done: str) -> dict:
                               "The next night, or `tarewise share`, catches up.") from exc
 
 
-def _work(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool, base_from: str | None) -> NightRecord:
+def _work(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool, base_from: str | None,
+          cold: bool = False) -> NightRecord:
     """The night's steps. ``ledger.recorded`` keeps the ledger row (done, skipped, or failed with the
     exception) and each ``night.stage`` its duration."""
     log = get_run_logger()
@@ -94,7 +97,7 @@ def _work(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool,
                            f"{cfg.runtime.min_ratings_to_train}); nothing trained or published")
                 log.warning(night.message)
                 return night
-            base_id, base, base_shadow = steps.with_io_retries(steps.load_base, cfg)(cfg, run_date, base_from)
+            base_id, base, base_shadow = steps.with_io_retries(steps.load_base, cfg)(cfg, run_date, base_from, cold)
         with night.stage("train"):
             trained = steps.train(cfg, window, base, base_shadow)
         cand, shadow = trained.candidate, trained.shadow.checkpoint if trained.shadow else None

@@ -64,6 +64,17 @@ class ColumnsConfig(_Section):
     event_time: str = Field("event_time", min_length=1, description="Column holding the event time (UTC).")
     source: str = Field("source", min_length=1, description="Column saying organic or probe.")
 
+    @model_validator(mode="after")
+    def _distinct(self) -> "ColumnsConfig":
+        # Two keys naming one column pass every row check (user = item on every row): refuse it here.
+        seen: dict[str, str] = {}
+        for key, column in self:
+            if column in seen:
+                raise ValueError(f"input.columns.{seen[column]} and input.columns.{key} both name the column "
+                                 f"{column!r}; each needs a column of its own")
+            seen[column] = key
+        return self
+
 
 class InputConfig(_Section):
     columns: ColumnsConfig = ColumnsConfig()

@@ -85,14 +85,13 @@ def read_window(cfg: Config, run_date: str) -> pd.DataFrame:
 
 
 @task(name="load-base", **IO)
-def load_base(cfg: Config, run_date: str, base_from: str | None = None
+def load_base(cfg: Config, run_date: str, base_from: str | None = None, cold: bool = False
               ) -> tuple[str | None, Checkpoint | None, Checkpoint | None]:
-    """``base_from``: start the base walk from this version instead of the live one (backfill chains)."""
-    ws = Workspace.at(cfg.paths.workspace)
-    vid = versions.base_for_date(ws, run_date, head=base_from)
-    if vid is None:
-        return None, None, None
-    return vid, versions.load_checkpoint(ws, vid, "model"), versions.load_checkpoint(ws, vid, "shadow")
+    """``base_from``: start the base walk from this version instead of the live one (backfill chains).
+    Refuses a damaged base (``versions.BaseDamaged``, not retried); ``cold``: start from scratch on purpose."""
+    if cold:
+        get_run_logger().warning("starting cold on request: no warm start, the gate compares with the shadow model")
+    return versions.load_base(Workspace.at(cfg.paths.workspace), run_date, head=base_from, cold=cold)
 
 
 @task(name="train", **COMPUTE)

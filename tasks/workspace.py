@@ -2,10 +2,11 @@
 
 Layout under the workspace root (all created on demand)::
 
-    store/dt=YYYY-MM-DD/part-0.parquet   validated ratings (latest event per user, item wins)
+    store/dt=YYYY-MM-DD/part-0.parquet   validated ratings, every valid row (latest event wins when read)
     quarantine/dt=YYYY-MM-DD/part-0.parquet   rejected rows with a reason
     versions/<version_id>/               predictions.parquet, model/, manifest.json
-    live.json                            pointer to the live version (switched atomically)
+    live.json                            pointer to the live version (switched atomically;
+                                         a damaged one is kept as live.json.damaged-<time>)
     ledger/runs.parquet                  run ledger
     metrics/nightly.parquet              drift metrics time series
     reports/YYYY-MM-DD.html|.json        nightly report and its JSON twin

@@ -22,7 +22,10 @@ def run(date: Optional[str] = typer.Option(None, "--date", "-d", help="Run date 
                                           "in runtime.timezone)."),
         config: Optional[Path] = ConfigOpt, logs: Optional[str] = LogsOpt, workspace: Optional[str] = WorkspaceOpt,
         shared: Optional[str] = SharedOpt, runner: Optional[str] = RunnerOpt,
-        dask_address: Optional[str] = DaskAddressOpt, verbose: bool = typer.Option(False, "--verbose", "-v")) -> None:
+        dask_address: Optional[str] = DaskAddressOpt,
+        cold: bool = typer.Option(False, "--cold", help="Start from scratch instead of warm-starting from the live "
+                                  "version (which is refused when its files are damaged; see `tarewise status`)."),
+        verbose: bool = typer.Option(False, "--verbose", "-v")) -> None:
     """One nightly run. Exits non-zero on failure; the live version is then untouched."""
     cfg = with_runner(load(config, logs, workspace, shared), runner, dask_address)
     prefect_env(cfg.paths.workspace, verbose)
@@ -36,7 +39,7 @@ def run(date: Optional[str] = typer.Option(None, "--date", "-d", help="Run date 
     from flows.nightly import nightly_for
     try:
         with console.status(f"nightly run for {date or 'yesterday'} ..."):
-            out = nightly_for(cfg)(cfg=cfg, run_date=date)
+            out = nightly_for(cfg)(cfg=cfg, run_date=date, cold=cold)
     except Exception as exc:  # noqa: BLE001 - the CLI reports every failure the same way
         fail(exc, "run")
     print_night(out)

@@ -36,6 +36,9 @@ def rollback(to: str = typer.Option(..., "--to", help="Version id to make live a
     if out["run_id"] is None:
         console.print(f"{to} is already live; nothing changed")
         return
+    if out["damaged_pointer"]:
+        err.print(f"note: the damaged live pointer was replaced; its bytes are kept at {out['damaged_pointer']}",
+                  highlight=False)
     if out["state_before"] == "held":
         err.print(f"note: {to} was held by the promotion gate when it was published (see `tarewise versions`)")
     console.print(f"live: {out['previous'] or 'none'} -> {out['live']} (ledger run {out['run_id']})", highlight=False)
@@ -52,6 +55,7 @@ def prune(as_of: Optional[str] = typer.Option(None, "--as-of", help="Reference d
     from tasks.dates import DateError, parse_date
     from tasks.lock import LockHeld, workspace_lock
     from tasks.operate.retention import apply_retention, default_as_of
+    from tasks.publish.versions import VersionError
     from tasks.workspace import Workspace
     ws = Workspace.at(cfg.paths.workspace)
     if as_of is not None:
@@ -63,7 +67,7 @@ def prune(as_of: Optional[str] = typer.Option(None, "--as-of", help="Reference d
     try:
         with workspace_lock(ws.lock, "prune", cfg.runtime.lock_stale_seconds):
             result = apply_retention(ws, cfg.retention, as_of or default_as_of(ws, cfg.runtime.timezone))
-    except LockHeld as exc:
+    except (LockHeld, VersionError) as exc:   # a damaged live pointer: which version to protect is unknown
         err.print(f"[bold red]prune refused[/]: {exc}", highlight=False)
         raise typer.Exit(1)
     console.print(result.summary(), highlight=False)

@@ -32,10 +32,14 @@ def score(pairs: Path = typer.Option(..., "--pairs", help="Parquet with user_id,
 def versions_cmd(config: Optional[Path] = ConfigOpt, workspace: Optional[str] = WorkspaceOpt) -> None:
     """List versions with state, run date, held-out MAE and gate reason."""
     cfg = load(config, None, workspace)
-    from tasks.publish.versions import list_versions
+    from tasks.publish.versions import PointerDamaged, list_versions, read_pointer
     from tasks.workspace import Workspace
-    t, reasons = versions_table(list_versions(Workspace.at(cfg.paths.workspace)),
-                                f"versions in {cfg.paths.workspace}")
+    ws = Workspace.at(cfg.paths.workspace)
+    try:
+        read_pointer(ws)
+    except PointerDamaged as exc:
+        err.print(f"[bold red]live version unknown[/]: {exc}", highlight=False, soft_wrap=True)
+    t, reasons = versions_table(list_versions(ws), f"versions in {cfg.paths.workspace}")
     console.print(t)
     for line in reasons:
         console.print(line, highlight=False, soft_wrap=True)
@@ -66,15 +70,24 @@ def status(runs: int = typer.Option(10, "--runs", help="How many ledger rows to 
            days: int = typer.Option(7, "--days", help="Alerts of this many nights up to the newest run."),
            config: Optional[Path] = ConfigOpt, workspace: Optional[str] = WorkspaceOpt,
            shared: Optional[str] = SharedOpt) -> None:
-    """Live version, shared copy, lock, last runs from the ledger, and recent alerts."""
+    """Live version, shared copy, lock, last runs from the ledger, recent alerts, and what is damaged or left
+    over in the workspace with the fix for each. Exits 1 when a problem needs someone to act."""
     cfg = load(config, None, workspace, shared)
+    from tasks.operate.doctor import PROBLEM
     from tasks.operate.status import status as workspace_status
     from tasks.workspace import Workspace
-    s = workspace_status(Workspace.at(cfg.paths.workspace), cfg.runtime.timezone, cfg.runtime.lock_stale_seconds,
-                         runs, days)
+    try:
+        ws = Workspace.at(cfg.paths.workspace)
+    except OSError as exc:
+        err.print(f"[bold red]status[/]: workspace {cfg.paths.workspace} cannot be opened: {exc}", highlight=False)
+        raise typer.Exit(2)
+    # Paused deployments need a Prefect server: their check goes into extra_checks (issue 15, part B).
+    s = workspace_status(ws, cfg.runtime.timezone, cfg.runtime.lock_stale_seconds, runs, days, extra_checks=())
     console.print(f"workspace: {s['workspace']}", highlight=False)
     lv = s["live"]
-    if lv:
+    if lv == "unknown":
+        console.print("live: [bold red]unknown[/] (see the problems below)")
+    elif lv:
         mae = f", held-out MAE {lv['mae']:.4f} (n={lv['heldout']})" if lv.get("mae") is not None else ""
         console.print(f"live: [bold]{lv['version_id']}[/] (night {lv['run_date']}, {lv['method']}{mae}); "
                       f"since {lv['since']}: {lv['reason']}", highlight=False)
@@ -83,10 +96,10 @@ def status(runs: int = typer.Option(10, "--runs", help="How many ledger rows to 
     if cfg.paths.shared:
         from tasks.operate.shared_copy import SharedCopyError, pending_files
         try:
-            n = pending_files(Workspace.at(cfg.paths.workspace), cfg.paths.shared)
+            n = pending_files(ws, cfg.paths.shared)
             console.print(f"shared copy: {cfg.paths.shared}: " + (f"{n} file(s) not copied yet (`tarewise share`)"
                                                                  if n else "up to date"), highlight=False)
-        except SharedCopyError as exc:
+        except (SharedCopyError, OSError, ValueError) as exc:
             console.print(f"shared copy: {exc}", highlight=False)
     lk = s["lock"]
     if lk:
@@ -95,8 +108,22 @@ def status(runs: int = typer.Option(10, "--runs", help="How many ledger rows to 
                       highlight=False)
     else:
         console.print("lock: free")
-    console.print(runs_table(s["runs"]))
-    if not s["alerts"]:
+    if "runs" in s["skipped"]:
+        console.print(f"runs: could not be read ({s['skipped']['runs']})", highlight=False)
+    else:
+        console.print(runs_table(s["runs"]))
+    if "alerts" in s["skipped"]:
+        console.print(f"alerts: could not be read ({s['skipped']['alerts']})", highlight=False)
+    elif not s["alerts"]:
         console.print(f"alerts: none in the {s['days']} nights up to {s['as_of']}")
+    else:
+        console.print(alerts_table(s["alerts"], s["days"], s["as_of"]))
+    findings = s["findings"]
+    if not findings:
+        console.print("workspace check: no problems found")
         return
-    console.print(alerts_table(s["alerts"], s["days"], s["as_of"]))
+    for f in findings:
+        label = "[bold red]problem[/]" if f.severity == PROBLEM else "[yellow]note[/]"
+        console.print(f"{label}: {f.what}\n  fix: {f.fix}", highlight=False, soft_wrap=True)
+    if any(f.severity == PROBLEM for f in findings):
+        raise typer.Exit(1)

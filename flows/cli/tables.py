@@ -46,7 +46,7 @@ def versions_table(manifests: list[dict], title: str) -> tuple[Table, list[str]]
         t.add_row(m["version_id"], m["state"], m.get("run_date", ""), m.get("method", ""), f("candidate"),
                   f("shadow"), f("live"), f"{'promote' if gate.get('promote') else 'hold'} vs "
                   f"{gate.get('compared_to', '?')}")
-        reasons.append(f"{m['version_id']}: {gate.get('reason', '')}")
+        reasons.append(f"{m['version_id']}: {m.get('damage') or gate.get('reason', '')}")
     return t, reasons
 
 

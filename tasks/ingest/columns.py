@@ -15,6 +15,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from tasks.ingest.errors import IngestError
+from tasks.ingest.ids import as_text
 
 #: The canonical rating columns, in the order the input config (``input.columns``) names them.
 CANONICAL = ("user_id", "item_id", "rating", "event_time", "source")
@@ -31,8 +32,8 @@ def canonical_columns(raw: pa.Table, path: str, names: dict[str, str]) -> tuple[
     (string), event_time_us (int64 microseconds since epoch, UTC; 0 where unusable); flags are boolean
     ``[rows]`` arrays keyed ``user_id_type``, ``item_id_type``, ``rating_text``, ``time_null``, ``time_bad``.
     """
-    user, user_bad = _as_id(raw["user_id"], path, "user_id", names["user_id"])
-    item, item_bad = _as_id(raw["item_id"], path, "item_id", names["item_id"])
+    user, user_bad = as_text(raw["user_id"], _label(path, "user_id", names["user_id"]))
+    item, item_bad = as_text(raw["item_id"], _label(path, "item_id", names["item_id"]))
     rating, rating_bad = _as_rating(raw["rating"], path, names["rating"])
     t_us, t_null, t_bad = _as_time(raw["event_time"], path, names["event_time"])
     source = _as_source(raw["source"], path, names["source"])
@@ -45,8 +46,12 @@ def canonical_columns(raw: pa.Table, path: str, names: dict[str, str]) -> tuple[
 
 # Each converter returns (canonical array with nulls where unusable, bad-cast mask).
 
+def _label(path: str, canon: str, name: str) -> str:
+    return f"{path}: column '{name}' (input.columns.{canon})"
+
+
 def _type_error(path: str, canon: str, name: str, typ: pa.DataType, expected: str) -> IngestError:
-    return IngestError(f"{path}: column '{name}' (input.columns.{canon}) has type {typ}; expected {expected}")
+    return IngestError(f"{_label(path, canon, name)} has type {typ}; expected {expected}")
 
 
 def _decode(arr: pa.ChunkedArray) -> pa.ChunkedArray:
@@ -57,31 +62,6 @@ def _decode(arr: pa.ChunkedArray) -> pa.ChunkedArray:
 
 def _no_fail(arr: pa.ChunkedArray) -> np.ndarray:
     return np.zeros(len(arr), dtype=bool)
-
-
-def _as_id(arr: pa.ChunkedArray, path: str, canon: str, name: str) -> tuple[pa.ChunkedArray, np.ndarray]:
-    arr = _decode(arr)
-    t = arr.type
-    if pa.types.is_string(t):
-        return arr, _no_fail(arr)
-    if pa.types.is_large_string(t) or pa.types.is_string_view(t) or pa.types.is_null(t):
-        return arr.cast(pa.string()), _no_fail(arr)
-    if pa.types.is_integer(t):
-        return arr.cast(pa.string()), _no_fail(arr)
-    if pa.types.is_floating(t):
-        # 123.0 is the integer 123 stored as float; 1.5 is no id at all.
-        x = arr.to_numpy(zero_copy_only=False).astype(np.float64)
-        whole = np.isfinite(x) & (np.floor(x) == x) & (np.abs(x) < 2.0**63)
-        null = pc.is_null(arr).to_numpy(zero_copy_only=False)
-        ints = pa.array(np.where(whole, x, 0).astype(np.int64), mask=~whole)
-        return pa.chunked_array([ints.cast(pa.string())]), ~whole & ~null
-    if pa.types.is_binary(t) or pa.types.is_large_binary(t):
-        try:
-            return arr.cast(pa.string()), _no_fail(arr)
-        except pa.ArrowInvalid as exc:
-            raise IngestError(f"{path}: column '{name}' (input.columns.{canon}) holds bytes that are "
-                              f"not UTF-8 text ({exc})") from exc
-    raise _type_error(path, canon, name, t, "text or whole numbers")
 
 
 _NUMBER_RE = r"^[+-]?([0-9]+(\.[0-9]*)?|\.[0-9]+)([eE][+-]?[0-9]+)?$"

@@ -7,7 +7,8 @@ runs in this process:
 1. :func:`list_partition` (``partition.py``): the partition's ``*.parquet`` files; ``_``/``.`` entries
    are skipped, other files listed as ignored.
 2. :func:`read_log_file` (``read.py``) per file: bytes, size and sha256; Parquet decode; the configured
-   columns coerced to canonical types (``columns.py``); every row check but duplicates (``rows.py``).
+   columns coerced to canonical types (``columns.py``; ids by ``ids.py``'s rule, which ``tarewise score``
+   shares); every row check but duplicates (``rows.py``).
 3. :func:`combine_files` (``result.py``): exact duplicates across the partition; valid rows split from
    rejected ones into an :class:`IngestResult`.
 

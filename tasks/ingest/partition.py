@@ -2,11 +2,14 @@
 
 Logs may live on any ``pyarrow.fs`` location (local folder, ``file://``, ``s3://``, ``gs://``). Files and
 folders whose name starts with ``_`` or ``.`` are skipped silently (markers, ground-truth folders, temp
-files); other files not ending in ``.parquet`` are listed as ignored so a run can warn about them.
+files); other files not ending in ``.parquet`` are listed as ignored so a run can warn about them. A
+symbolic link whose target is gone is an error naming it: pyarrow's listing leaves such links out, so
+the rows of a moved file would otherwise vanish without a word.
 """
 
 from __future__ import annotations
 
+import os
 from dataclasses import dataclass, field
 
 import pyarrow as pa
@@ -51,6 +54,10 @@ def list_partition(logs: str, run_date: str, cfg: Config) -> PartitionListing:
                           "input.missing_partition = \"skip\" to treat a missing day as empty)")
     if info.type != pafs.FileType.Directory:
         raise IngestError(f"partition {part} is a file, expected a folder of Parquet files")
+    dangling = _dangling_links(fs, part)
+    if dangling:
+        raise IngestError(f"partition {part}: dangling symlink {', '.join(dangling)} (the target does not exist); "
+                          "restore the target or remove the link")
     paths, ignored = _list_files(fs, part)
     if not paths:
         if skip:
@@ -98,3 +105,18 @@ def _list_files(fs: pafs.FileSystem, part: str) -> tuple[list[str], list[str]]:
             continue
         (parquet if entry.base_name.endswith(".parquet") else ignored).append(entry.path)
     return sorted(parquet), sorted(ignored)
+
+
+def _dangling_links(fs: pafs.FileSystem, part: str) -> list[str]:
+    """``"<link> -> <target>"`` for every non-hidden link under ``part`` whose target does not exist (or
+    loops). Object stores have no links: only a local filesystem is walked."""
+    if not isinstance(fs, pafs.LocalFileSystem):
+        return []
+    out = []
+    for root, dirs, files in os.walk(part):
+        dirs[:] = [d for d in dirs if not d.startswith(("_", "."))]
+        for name in files:
+            path = os.path.join(root, name)
+            if not name.startswith(("_", ".")) and os.path.islink(path) and not os.path.exists(path):
+                out.append(f"{path} -> {os.readlink(path)}")
+    return sorted(out)

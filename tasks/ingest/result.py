@@ -63,6 +63,23 @@ class IngestResult:
     def rows_rejected(self) -> int:
         return len(self.rejected)
 
+    @property
+    def no_valid_rows(self) -> bool:
+        """Nothing to store for this day: missing partition, files without rows, or every row rejected.
+        A night should say so (an empty day), not look like a normal one."""
+        return self.rows_valid == 0
+
+    def summary(self) -> str:
+        """One line for logs, the ledger and alerts; an empty day starts ``run date D: 0 valid rows:``."""
+        head = f"run date {self.run_date}: "
+        if self.missing:
+            return head + "0 valid rows: partition missing (input.missing_partition = \"skip\")"
+        if self.rows_valid == 0:
+            why = ("0 rows in them" if self.rows_read == 0
+                   else f"{self.rows_read} row(s), all quarantined")
+            return head + f"0 valid rows: {len(self.files)} file(s) read, {why}"
+        return head + f"{self.rows_valid} valid rows, {self.rows_rejected} quarantined, from {len(self.files)} file(s)"
+
 
 # STORE with input_file dictionary-encoded: one path per file instead of one string per row in memory
 # (a pandas categorical in ``IngestResult.valid``); the store writes it as plain text.

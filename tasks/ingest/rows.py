@@ -4,6 +4,8 @@ A row is checked on every rule; each rule that fails adds its reason key, and th
 reason of a row, in :data:`ORDER`, joined by :data:`REASON_SEP`. Reasons are fixed phrases (values stay
 in the row itself, some phrases quote config values), so counting rejected rows by reason is meaningful.
 All checks are vectorised over the whole file or partition (numpy / pyarrow compute); none loops over rows.
+What makes an id acceptable (blanks only count as empty; blanks at either end are refused) is ``ids.py``'s
+rule, shared with ``tarewise score``.
 """
 
 from __future__ import annotations
@@ -16,6 +18,7 @@ import pyarrow.compute as pc
 
 from tasks.config import Config
 from tasks.ingest.columns import US
+from tasks.ingest.ids import id_masks
 
 _US_PER_DAY = 86_400 * US
 _STEP_TOLERANCE = 1e-9
@@ -26,8 +29,8 @@ REASON_SEP = "; "
 DUPLICATE = "exact duplicate of an earlier event (same user, item, rating, event_time, source)"
 
 #: Every reason key, in the order reasons are listed for a row.
-ORDER = ["user_id_null", "user_id_type", "user_id_long", "item_id_null", "item_id_type", "item_id_long",
-         "rating_null", "rating_text", "rating_nonfinite", "rating_scale", "rating_step", "source_label",
+ORDER = ["user_id_null", "user_id_type", "user_id_long", "user_id_padded", "item_id_null", "item_id_type",
+         "item_id_long", "item_id_padded", "rating_null", "rating_text", "rating_nonfinite", "rating_scale", "rating_step", "source_label",
          "time_null", "time_bad", "time_future", "time_wrong_day", "duplicate"]
 
 
@@ -39,9 +42,11 @@ def reason_phrases(cfg: Config) -> dict[str, str]:
         "user_id_null": "user_id is missing or empty",
         "user_id_type": "user_id is neither text nor a whole number",
         "user_id_long": f"user_id longer than {i.max_id_length} characters (input.max_id_length)",
+        "user_id_padded": "user_id has blanks at its start or end (ids are compared exactly, blanks too)",
         "item_id_null": "item_id is missing or empty",
         "item_id_type": "item_id is neither text nor a whole number",
         "item_id_long": f"item_id longer than {i.max_id_length} characters (input.max_id_length)",
+        "item_id_padded": "item_id has blanks at its start or end (ids are compared exactly, blanks too)",
         "rating_null": "rating is missing",
         "rating_text": "rating is not a number",
         "rating_nonfinite": "rating is NaN or infinite",
@@ -63,24 +68,6 @@ def _np(x) -> np.ndarray:
     return x.to_numpy(zero_copy_only=False)
 
 
-def _byte_lengths(col: pa.ChunkedArray) -> tuple[np.ndarray, np.ndarray]:
-    """(UTF-8 byte length, null mask) of a string column, read straight from the offsets buffers."""
-    lengths, nulls = [], []
-    for chunk in col.chunks:
-        buf = chunk.buffers()[1]
-        if len(chunk) == 0:
-            continue
-        if buf is None:   # e.g. an all-null column cast from the null type
-            lengths.append(np.zeros(len(chunk), np.int32))
-        else:
-            offsets = np.frombuffer(buf, dtype=np.int32)[chunk.offset:chunk.offset + len(chunk) + 1]
-            lengths.append(np.diff(offsets))
-        nulls.append(_np(chunk.is_null()) if chunk.null_count else np.zeros(len(chunk), bool))
-    if not lengths:
-        return np.zeros(0, np.int32), np.zeros(0, bool)
-    return np.concatenate(lengths), np.concatenate(nulls)
-
-
 def check_rows(t: pa.Table, flags: dict[str, np.ndarray], day: dt.date, cfg: Config
                ) -> tuple[dict[str, np.ndarray], np.ndarray]:
     """Every check but duplicates over one canonical table (:func:`tasks.ingest.columns.canonical_columns`).
@@ -89,18 +76,9 @@ def check_rows(t: pa.Table, flags: dict[str, np.ndarray], day: dt.date, cfg: Con
     ``[rows]`` masks by reason key, ratings ``[rows]`` float64 snapped onto the scale's step).
     """
     masks = dict(flags)
-    max_len = cfg.input.max_id_length
     for col in ("user_id", "item_id"):
-        ids = t[col]
-        nbytes, null = _byte_lengths(ids)
-        masks[f"{col}_null"] = (null | (nbytes == 0)) & ~masks[f"{col}_type"]
-        # A character takes at least one byte, so only ids longer in bytes need counting in characters.
-        long = nbytes > max_len
-        if long.any():
-            rows = np.flatnonzero(long)
-            chars = _np(pc.utf8_length(ids.take(pa.array(rows))))
-            long[rows] = chars > max_len
-        masks[f"{col}_long"] = long
+        for check, mask in id_masks(t[col], masks[f"{col}_type"], cfg.input.max_id_length).items():
+            masks[f"{col}_{check}"] = mask
 
     masks.update(_rating_masks(t["rating"], masks["rating_text"], cfg))
     snapped = masks.pop("_snapped")

@@ -5,11 +5,11 @@ Layout: ``<workspace>/store/dt=YYYY-MM-DD/part-0.parquet`` with :data:`tasks.sch
 Rules
 - Idempotent: writing a date replaces that date's file (atomic rename), so re-running a date or a
   backfill never duplicates rows.
-- One row per (user_id, item_id, source) within a date: the latest ``event_time`` wins; on equal
-  times the later input row wins (a re-rating later in the log replaces the earlier one). Rows keep
-  their input order.
-- Across dates (:func:`read_window`) the same key again keeps only the latest event; on equal times
-  the later date wins.
+- Every valid row of a date is stored, in input order: each input row ends in the store or in the
+  quarantine, so a re-rating that a later one replaces is still on record (with its input file and row).
+- Which rating counts is decided when the window is read (:func:`read_window`): per (user_id, item_id,
+  source) the latest ``event_time`` wins; on equal times the later date, then the later input row (a
+  re-rating later in the log replaces the earlier one).
 - ``source`` is part of the key on purpose: an organic rating and a probe rating of the same
   (user, item) are different evidence (one chosen by the user, one drawn at random), so both are
   kept; the engine decides how to split them.
@@ -111,16 +111,13 @@ def _to_store_table(valid: pd.DataFrame | pa.Table) -> pa.Table:
 
 def write_partition(ws: Workspace, run_date: str, valid: pd.DataFrame | pa.Table) -> dict:
     """Replace ``store/dt=<run_date>/part-0.parquet`` with ``valid`` (schemas.STORE columns; an Arrow
-    table as ingest makes it, or a pandas frame).
+    table as ingest makes it, or a pandas frame), every row in input order.
 
-    Keeps the latest event per (user_id, item_id, source); writes an empty file when ``valid`` is
-    empty (so a re-run that now finds nothing also clears the date). Returns ``{"path", "rows"}``.
+    Writes an empty file when ``valid`` is empty (so a re-run that now finds nothing also clears the
+    date). Returns ``{"path", "rows"}``.
     """
     parse_date(run_date)
     table = _to_store_table(valid)
-    keep = latest_mask(table)
-    if not keep.all():
-        table = table.filter(pa.array(keep))
     path = ws.partition(ws.store, run_date) / PART_FILE
     atomic_write_table(path, table)
     return {"path": os.fspath(path), "rows": table.num_rows}

@@ -1,16 +1,21 @@
-"""What is going on in a workspace (``tarewise status``): live version, lock, recent runs and alerts.
-Plain functions over the ledger, versions, lock and alert history; the CLI prints them."""
+"""What is going on in a workspace (``tarewise status``): live version, lock, recent runs and alerts,
+and what the workspace doctor (``doctor.py``) found. Plain functions over the ledger, versions, lock and
+alert history; the CLI prints them. A damaged file never stops the rest from being shown: its section is
+left empty and the doctor names the damage."""
 
 from __future__ import annotations
 
 import json
+from typing import Callable, Iterable
 
 import pandas as pd
 
 from tasks import ledger
+from tasks import dates
 from tasks.dates import shift
 from tasks.lock import is_stale, read_lock
 from tasks.monitor.alert_history import latest_by_night, read_history
+from tasks.operate import doctor
 from tasks.operate.retention import default_as_of
 from tasks.publish import versions
 from tasks.workspace import Workspace
@@ -69,14 +74,31 @@ def recent_alerts(ws: Workspace, as_of: str, days: int) -> list[dict]:
     return sorted(latest, key=lambda r: (str(r.get("run_date")), str(r.get("recorded_at", ""))))
 
 
-def status(ws: Workspace, timezone: str, stale_seconds: float, runs: int = 10, days: int = 7) -> dict:
+def _or(name: str, section: Callable[[], object], fallback: object, skipped: dict[str, str]) -> object:
+    """A section's value, or ``fallback`` when it cannot be read; then ``skipped[name]`` says why (the
+    doctor names the damaged file and its fix)."""
+    try:
+        return section()
+    except Exception as exc:  # noqa: BLE001 - status shows what it can, and says what it could not
+        skipped[name] = f"{type(exc).__name__}: {exc}"
+        return fallback
+
+
+def status(ws: Workspace, timezone: str, stale_seconds: float, runs: int = 10, days: int = 7,
+           extra_checks: Iterable[Callable[[], list[doctor.Finding]]] = ()) -> dict:
     """Everything ``tarewise status`` shows. ``as_of`` (for "the last week") is the newest completed run
-    date, so a workspace replaying old history shows that history's alerts."""
+    date, so a workspace replaying old history shows that history's alerts. ``live`` is the string
+    ``"unknown"`` when the pointer or the live manifest cannot be read. ``skipped``: section -> why it
+    could not be read. ``findings``: the doctor's (:func:`tasks.operate.doctor.diagnose`, with
+    ``extra_checks``)."""
     holder = read_lock(ws.lock)
     lock = None
     if holder is not None or ws.lock.exists():
         lock = {**(holder or {}), "stale": is_stale(holder, stale_seconds)}
-    as_of = default_as_of(ws, timezone)
-    return {"workspace": str(ws.root), "live": live_summary(ws), "lock": lock,
-            "runs": recent_runs(ws, runs, stale_seconds), "as_of": as_of, "days": days,
-            "alerts": recent_alerts(ws, as_of, days)}
+    skipped: dict[str, str] = {}
+    today = dates.today(timezone)
+    as_of = _or("as_of", lambda: default_as_of(ws, timezone), today, skipped)
+    return {"workspace": str(ws.root), "live": _or("live", lambda: live_summary(ws), "unknown", skipped),
+            "lock": lock, "runs": _or("runs", lambda: recent_runs(ws, runs, stale_seconds), [], skipped),
+            "as_of": as_of, "days": days, "alerts": _or("alerts", lambda: recent_alerts(ws, as_of, days), [], skipped),
+            "skipped": skipped, "findings": doctor.diagnose(ws, stale_seconds, extra_checks)}

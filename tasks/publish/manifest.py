@@ -1,7 +1,9 @@
-"""What a version's manifest records, so anyone can tell where its predictions came from."""
+"""What a version's manifest records, so anyone can tell where its predictions came from, and whether
+its own files are still the ones published (sizes and sha256 of every file in the version folder)."""
 
 from __future__ import annotations
 
+import hashlib
 import subprocess
 from functools import lru_cache
 from importlib import metadata
@@ -56,3 +58,43 @@ def build_manifest(cfg: Config, run_date: str, kind: str, base_version: str | No
         "training_rounds": rounds,
         "engine_notes": notes,
     }
+
+
+#: The manifest's own name: the one file of a version it cannot describe.
+MANIFEST = "manifest.json"
+
+
+def sha256_file(path: Path, chunk: int = 1 << 20) -> str:
+    """Hex sha256 of a file's bytes, read in ``chunk``-byte pieces (memory stays flat for large files)."""
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        while block := fh.read(chunk):
+            h.update(block)
+    return h.hexdigest()
+
+
+def version_files(folder: Path) -> dict[str, dict]:
+    """``{relative path: {"size": bytes, "sha256": hex}}`` of every file under a version folder except the
+    manifest, sorted by path (``predictions.parquet``, ``model/model.pt``, ``shadow/meta.json``, ...)."""
+    folder = Path(folder)
+    out = {}
+    for path in sorted(p for p in folder.rglob("*") if p.is_file()):
+        rel = path.relative_to(folder).as_posix()
+        if rel != MANIFEST:
+            out[rel] = {"size": path.stat().st_size, "sha256": sha256_file(path)}
+    return out
+
+
+def file_problems(folder: Path, recorded: dict[str, dict], check_sha: bool = True) -> list[str]:
+    """One line per recorded file that is missing or differs in size or sha256 from ``recorded`` (the
+    manifest's ``files``); empty when all match. ``check_sha=False``: presence and sizes only (cheap)."""
+    problems = []
+    for rel, want in sorted(recorded.items()):
+        path = Path(folder) / rel
+        if not path.is_file():
+            problems.append(f"{path} is missing")
+        elif path.stat().st_size != want.get("size"):
+            problems.append(f"{path} has {path.stat().st_size} bytes, the manifest records {want.get('size')}")
+        elif check_sha and sha256_file(path) != want.get("sha256"):
+            problems.append(f"{path} differs from the manifest's sha256 (same size, other bytes)")
+    return problems

@@ -1,8 +1,9 @@
 """Small rating-log Parquet files for the ingest tests, and the runner of the bad-input corpus.
 
 The corpus is one table per module (``test_columns.py``, ``test_read.py``, ``test_rows.py``,
-``test_result.py``): each :class:`Case` writes real Parquet files into a ``dt=`` partition and reads
-them through :func:`tasks.ingest.logs.read_partition`, the path a night takes.
+``test_result.py``, ``test_partition.py``): each :class:`Case` writes real Parquet files into a ``dt=``
+partition and reads them through :func:`tasks.ingest.logs.read_partition`, the path a night takes. Every
+case that reads also stores and quarantines the day, and checks that each input row ends in one of them.
 """
 
 from __future__ import annotations
@@ -17,7 +18,9 @@ import pyarrow.parquet as pq
 import pytest
 
 from tasks.config import Config
-from tasks.ingest.logs import IngestError, IngestResult, read_partition
+from tasks.ingest import store
+from tasks.ingest.logs import IngestError, IngestResult, read_partition, write_quarantine
+from tasks.workspace import Workspace
 
 DAY = "2026-11-01"
 COLS = ["user_id", "item_id", "rating", "event_time", "source"]
@@ -96,6 +99,21 @@ def run_case(case: Case, logs: Path) -> None:
         assert row["run_date"] == DAY and row["reason"]
     if case.check is not None:
         case.check(res)
+    assert_every_row_kept(res, paths, Workspace.at(logs.parent / "ws"))
+
+
+def assert_every_row_kept(res: IngestResult, paths: list[Path], ws: Workspace) -> None:
+    """Nothing is lost: store the day and quarantine its rejects as a night does, read both back, and
+    match them row for row against the input files (counted from the files' own Parquet footers)."""
+    write_quarantine(ws, DAY, res.rejected)
+    store.write_partition(ws, DAY, res.valid_table)
+    stored = pq.read_table(ws.partition(ws.store, DAY) / "part-0.parquet").to_pandas()
+    quarantined = pq.read_table(ws.partition(ws.quarantine, DAY) / "part-0.parquet").to_pandas()
+    rows_in = {str(p): pq.ParquetFile(p).metadata.num_rows for p in paths}
+    assert len(stored) + len(quarantined) == sum(rows_in.values()), (len(stored), len(quarantined), rows_in)
+    kept = list(zip(stored["input_file"].astype(str), stored["input_row"])) + \
+        list(zip(quarantined["input_file"], quarantined["input_row"]))
+    assert sorted(kept) == sorted((p, k) for p, n in rows_in.items() for k in range(n))
 
 
 def column_is(res: IngestResult, column: str, expected: list) -> None:

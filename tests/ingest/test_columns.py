@@ -29,7 +29,7 @@ def _times_and_ratings_cast(res) -> None:
     assert res.valid["rating"].tolist() == [3.0, 4.0, 5.0]
 
 
-ODD_IDS = ["<script>alert('x')</script>", 'O\'Brien "the reader"', "名前-é-ß", "📚 audio; DROP TABLE", " padded "]
+ODD_IDS = ["<script>alert('x')</script>", 'O\'Brien "the reader"', "名前-é-ß", "📚 audio; DROP TABLE", "inner  blanks"]
 
 
 CASES = {
@@ -100,3 +100,15 @@ CASES = {
 @pytest.mark.parametrize("name", list(CASES))
 def test_bad_input_corpus(name: str, logs: Path) -> None:
     run_case(CASES[name], logs)
+
+
+def test_two_canonical_columns_mapped_to_one_source_column_are_refused() -> None:
+    """user = item on every stored row would pass every row check: the config refuses it, naming both keys."""
+    from tasks.config import Config, ConfigError, parse_config
+
+    with pytest.raises(ConfigError, match=r"input\.columns\.user_id and input\.columns\.item_id both name the "
+                                          r"column 'id'"):
+        parse_config({"input": {"columns": {"user_id": "id", "item_id": "id"}}}, source="night.toml")
+    with pytest.raises(ConfigError, match=r"input\.columns\.rating and input\.columns\.source both name the "
+                                          r"column 'rating'"):
+        Config().updated({"input.columns.source": "rating"})

@@ -57,3 +57,22 @@ def test_bad_run_date_is_rejected(logs: Path, cfg: Config) -> None:
 def test_partition_dates_of_a_uri(logs: Path) -> None:
     write(logs, table(good(3)))
     assert list_partition_dates(logs.as_uri()) == [DAY]      # file:///... resolved by pyarrow.fs
+
+
+def test_dangling_symlink_is_an_error_naming_it(logs: Path, cfg: Config) -> None:
+    """A link whose target is gone (a file moved by an upstream job) would silently drop its rows."""
+    write(logs, table(good(2)))
+    (logs / f"dt={DAY}" / "part-1.parquet").symlink_to(logs / "moved-away.parquet")
+    with pytest.raises(IngestError, match=r"dangling symlink .*dt=2026-11-01/part-1\.parquet -> .*moved-away\.parquet"):
+        read_partition(str(logs), DAY, cfg)
+
+
+def test_links_that_resolve_are_read_and_hidden_dangling_ones_ignored(logs: Path, cfg: Config) -> None:
+    """A working link is read like a file; a dangling hidden one (an editor's ``.#name`` lock) is skipped
+    like every hidden entry."""
+    target = write(logs, table(good(3)), day="2026-10-31")
+    (logs / f"dt={DAY}").mkdir()
+    (logs / f"dt={DAY}" / "linked.parquet").symlink_to(target)
+    (logs / f"dt={DAY}" / ".#linked.parquet").symlink_to(logs / "nowhere")
+    res = read_partition(str(logs), DAY, cfg)
+    assert res.rows_read == 3 and [Path(f["path"]).name for f in res.files] == ["linked.parquet"]

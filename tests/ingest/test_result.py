@@ -56,3 +56,21 @@ def test_rows_spread_over_files_keep_their_own_file_and_row(logs: Path, cfg: Con
     assert res.rejected[["input_file", "input_row"]].values.tolist() == [[str(b), 2]]
     assert res.valid[["input_file", "input_row"]].astype(str).values.tolist() == \
         [[str(a), "0"], [str(a), "1"], [str(a), "2"], [str(b), "0"], [str(b), "1"]]
+
+
+def test_a_day_without_valid_rows_says_so(logs: Path, cfg: Config) -> None:
+    """The flow needs one clear fact to skip an empty night: no valid rows, and why."""
+    write(logs, table([]))
+    empty = read_partition(str(logs), DAY, cfg)
+    assert empty.no_valid_rows and empty.summary() == (f"run date {DAY}: 0 valid rows: 1 file(s) read, "
+                                                       "0 rows in them")
+    write(logs, table([("m", "t", 9.0, T0, "organic")]))
+    rejected = read_partition(str(logs), DAY, cfg)
+    assert rejected.no_valid_rows and rejected.summary() == (f"run date {DAY}: 0 valid rows: 1 file(s) read, "
+                                                             "1 row(s), all quarantined")
+    write(logs, table(good(2) + [("m", "t", 9.0, T0, "organic")]))
+    some = read_partition(str(logs), DAY, cfg)
+    assert not some.no_valid_rows and some.summary() == (f"run date {DAY}: 2 valid rows, 1 quarantined, "
+                                                         "from 1 file(s)")
+    skip = read_partition(str(logs / "elsewhere"), DAY, cfg.updated({"input.missing_partition": "skip"}))
+    assert skip.no_valid_rows and "0 valid rows: partition missing" in skip.summary()

@@ -24,6 +24,10 @@ def _first_occurrence_kept(res, rejected_rows: list[int]) -> None:
     assert sorted(res.rejected["input_row"].tolist()) == rejected_rows
 
 
+def _reasons_are(res, reasons: list[str]) -> None:
+    assert res.rejected.sort_values("input_row")["reason"].tolist() == reasons
+
+
 # 200 characters but 600 bytes: the length rule counts characters.
 WIDE_ID = "館" * 200
 
@@ -55,6 +59,26 @@ CASES = {
                          reason="user_id is missing or empty", rejected=1, valid=2),
     "empty_item_id": Case(lambda: [("p.parquet", table(good(2) + [("m", "", 3.0, T0, "organic")]))],
                           reason="item_id is missing or empty", rejected=1, valid=2),
+    # Ids of blanks only are as empty as "": an upstream bug that blanks ids must not make one phantom
+    # member (or title) out of every such row.
+    "blank_ids": Case(lambda: [("p.parquet", table(good(2) + [("   ", "t", 3.0, T0, "organic"),
+                                                              ("\t\n", "u", 3.0, T0, "organic"),
+                                                              ("\u00a0", "v", 3.0, T0, "probe"),
+                                                              ("m", " ", 3.0, T0, "organic")]))],
+                      reason="is missing or empty", rejected=4, valid=2,
+                      check=lambda res: _reasons_are(res, ["user_id is missing or empty"] * 3 +
+                                                     ["item_id is missing or empty"])),
+    # Real ids with blanks at either end are refused, not trimmed: trimming would merge them silently into
+    # the member without blanks, keeping them would make a second, phantom member.
+    "blank_padded_ids": Case(lambda: [("p.parquet", table(good(2) + [(" member-000000", "t", 3.0, T0, "organic"),
+                                                                     ("member-000000\t", "u", 3.0, T0, "organic"),
+                                                                     ("m", "title-000001 ", 3.0, T0, "organic"),
+                                                                     ("m", "title one", 3.0, T0, "organic")]))],
+                             reason="blanks at its start or end", rejected=3, valid=3,
+                             check=lambda res: _reasons_are(res, [
+                                 "user_id has blanks at its start or end (ids are compared exactly, blanks too)"]
+                                 * 2 + ["item_id has blanks at its start or end (ids are compared exactly, blanks "
+                                        "too)"])),
     "huge_id": Case(lambda: [("p.parquet", table(good(1) + [("x" * 10_000, "t", 3.0, T0, "organic"),
                                                             ("m", "y" * 257, 3.0, T0, "organic"),
                                                             (WIDE_ID, "t", 3.0, T0, "organic")]))],

@@ -57,12 +57,14 @@ def test_latest_event_wins_within_a_date_ties_go_to_the_last_row(ws: Workspace) 
         ("m1", "t1", 1, "2026-11-01T07:00:00", "probe"),     # same pair, probe: kept beside the organic one
     ])
     out = write_partition(ws, "2026-11-01", df)
-    assert out["rows"] == 3
+    # Every row is on record, in input order; the window counts only the winners.
+    assert out["rows"] == 5
     stored = pq.read_table(out["path"]).to_pandas()
-    assert as_set(stored) == {("m1", "t1", "organic", 5.0), ("m2", "t1", "organic", 4.0), ("m1", "t1", "probe", 1.0)}
-    # Lineage survives: the winning rows still point at their input rows.
-    assert sorted(stored["input_row"].tolist()) == [0, 3, 4]
+    assert stored["input_row"].tolist() == [0, 1, 2, 3, 4]
     assert pq.read_schema(out["path"]).equals(schemas.STORE, check_metadata=False)
+    win = read_window(ws, "2026-11-01", 1)
+    assert as_set(win) == {("m1", "t1", "organic", 5.0), ("m2", "t1", "organic", 4.0), ("m1", "t1", "probe", 1.0)}
+    assert win["rating"].tolist() == [5.0, 4.0, 1.0]      # winners keep their input order
 
 
 def test_latest_event_wins_across_dates_and_ties_go_to_the_later_date(ws: Workspace) -> None:
@@ -129,7 +131,8 @@ def test_ingest_output_goes_straight_into_the_store(ws: Workspace, logs, cfg) ->
                                                     pa.timestamp("us", tz="UTC")),
                              "source": ["organic", "organic", "probe"]}), part / "a.parquet")
     res = read_partition(str(logs), "2026-11-01", cfg)
-    assert write_partition(ws, "2026-11-01", res.valid)["rows"] == 2
+    assert write_partition(ws, "2026-11-01", res.valid)["rows"] == 3       # every valid row on record
+    assert read_window(ws, "2026-11-01", 1)["rating"].tolist() == [5.0, 3.0]   # the re-rating counts
     stored = pq.read_table(ws.store / "dt=2026-11-01" / "part-0.parquet")
     assert stored.schema.equals(schemas.STORE, check_metadata=False)
     assert set(stored["input_file"].to_pylist()) == {str(part / "a.parquet")}
@@ -163,7 +166,8 @@ def test_latest_event_matches_a_pandas_reference(ws: Workspace, monkeypatch, pac
     monkeypatch.setattr(store, "_PACK_LIMIT", pack_limit)    # 1 forces the path used for huge id spaces
     df = _random_ratings(3000, seed=1)
     out = write_partition(ws, "2026-11-01", df)
-    got = pq.read_table(out["path"]).to_pandas()
+    assert pq.read_table(out["path"]).num_rows == len(df)
+    got = read_window(ws, "2026-11-01", 1)
     assert {(r.user_id, r.item_id, r.source, r.rating, r.event_time) for r in got.itertuples()} == \
         _reference_latest(df)
     # Across dates: date order, then row order breaks ties.

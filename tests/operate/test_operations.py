@@ -14,6 +14,7 @@ import numpy as np
 import pandas as pd
 import pyarrow.parquet as pq
 import pytest
+from fast_config import FAST_TOML
 from typer.testing import CliRunner
 
 from tasks import ledger
@@ -22,26 +23,6 @@ from tasks.publish import versions
 from tasks.workspace import Workspace
 
 DATES = ["2026-11-01", "2026-11-02", "2026-11-03"]
-
-# Small and fast; the lenient gate makes every night go live (three live switches to roll back over).
-FAST_TOML = """
-[model]
-dim = 4
-max_epochs = 6
-finetune_epochs = 2
-
-[evaluate]
-bootstrap = 20
-
-[gate]
-tolerance_mae = 1.0
-max_segment_regression = 2.0
-min_heldout = 1
-
-[runtime]
-shadow = false
-timezone = "Europe/Berlin"
-"""
 
 
 @pytest.fixture(scope="module")
