@@ -8,7 +8,6 @@ import pandas as pd
 import pytest
 import torch
 
-from tasks.config import Config, ConfigError
 from tasks.engine.checkpoint import Checkpoint
 from tasks.engine.per_user import SCALE_RANGE, shrinkage_strength
 from tasks.engine.settings import Settings
@@ -101,8 +100,3 @@ def test_few_probe_ratings_fall_back_to_the_offset_design(world, cfg) -> None:
     none = fit(organic, probe.iloc[:0], cfg)
     assert any("no probe ratings" in n for n in none.notes)
     assert np.all(none.checkpoint.user_offset == 0)
-
-
-def test_per_user_does_not_take_recalibrate_as_a_companion() -> None:
-    with pytest.raises(ConfigError, match="combine_with"):
-        Config().updated({"debias.method": "per_user", "debias.combine_with": "recalibrate"})
