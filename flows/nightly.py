@@ -10,7 +10,7 @@ from prefect.artifacts import create_markdown_artifact, create_table_artifact
 from flows import runners
 from tasks import ledger, steps
 from tasks.config import Config
-from tasks.dates import yesterday
+from tasks.dates import parse_date, yesterday
 from tasks.evaluate.gate import decide
 from tasks.lock import workspace_lock
 from tasks.monitor.night_report import report_night
@@ -41,8 +41,9 @@ def nightly(cfg: Config, run_date: str | None = None, kind: str = "nightly", mak
     """One night. ``make_live=False`` publishes without switching live (backfill's middle nights);
     ``take_lock=False`` when a parent flow (backfill) already holds the workspace lock; ``base_from``
     warm-starts from that version's chain instead of the live one (see ``versions.base_for_date``)."""
-    ws = Workspace.at(cfg.paths.workspace)
     run_date = run_date or yesterday(cfg.runtime.timezone)
+    parse_date(run_date)   # a malformed date is refused before the ledger records a night
+    ws = Workspace.at(cfg.paths.workspace)
     if take_lock:
         with workspace_lock(ws.lock, f"{kind} run for {run_date}", cfg.runtime.lock_stale_seconds):
             if cfg.paths.shared:   # a workspace that has never run starts from the shared copy
