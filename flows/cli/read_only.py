@@ -1,7 +1,7 @@
 """Commands that look at the workspace and change nothing in it: ``versions``, ``status``, ``report``
 (re-renders a night's report from stored metrics) and ``score`` (writes only its ``--out`` file).
 
-None of them runs a flow, so none imports Prefect: they start in well under a second. None of them
+None of them runs a flow, so none imports Prefect (they take a few seconds, mostly loading torch). None of them
 creates a workspace: with none at the configured path they say which paths were tried (exit 2).
 """
 
