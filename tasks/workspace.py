@@ -82,7 +82,7 @@ def check_writable(path: str | os.PathLike, min_free_mb: float = 0.0) -> Path:
         free_mb = shutil.disk_usage(base).free / 1e6
         if free_mb < min_free_mb:
             raise WorkspaceError(f"workspace {root}: only {free_mb:.0f} MB free on its disk, less than "
-                                 f"runtime.min_free_mb = {min_free_mb:g}; free some space (`tarewise prune` removes "
+                                 f"runtime.min_free_mb = {min_free_mb}; free some space (`tarewise prune` removes "
                                  f"old versions) or point at another disk with {POINT_AT}")
     return root
 
