@@ -13,7 +13,7 @@ from flows.alert_channels import prefect_channels
 from flows.night_record import NightRecord, epoch_seconds, input_counts, training_counts
 from tasks import ledger, steps
 from tasks.config import Config
-from tasks.dates import yesterday
+from tasks.dates import parse_date, yesterday
 from tasks.engine.checkpoint import Checkpoint
 from tasks.evaluate.gate import decide
 from tasks.evaluate.segments import user_skew_segments
@@ -34,8 +34,9 @@ def nightly(cfg: Config, run_date: str | None = None, kind: str = "nightly", mak
     ``take_lock=False`` when a parent flow (backfill) already holds the workspace lock; ``base_from``
     warm-starts from that version's chain instead of the live one (see ``versions.base_for_date``);
     ``cold`` starts from scratch (a damaged base is otherwise refused)."""
-    ws = Workspace.at(cfg.paths.workspace)
     run_date = run_date or yesterday(cfg.runtime.timezone)
+    parse_date(run_date)   # a malformed date is refused before the ledger records a night
+    ws = Workspace.at(cfg.paths.workspace)
     if take_lock:
         with workspace_lock(ws.lock, f"{kind} run for {run_date}", cfg.runtime.lock_stale_seconds):
             if cfg.paths.shared:   # a workspace that has never run starts from the shared copy

@@ -7,6 +7,7 @@ is allowed. Nothing below imports Prefect, so the engine can take these objects 
 
 from __future__ import annotations
 
+import datetime
 import hashlib
 import json
 import os
@@ -14,7 +15,7 @@ import tomllib
 from pathlib import Path
 from typing import Literal
 
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
 
 class ConfigError(ValueError):
@@ -224,9 +225,47 @@ class RetentionConfig(_Section):
     metrics_days: int = Field(365, ge=1, description="Metric rows older than this are dropped.")
 
 
+def check_timezone(name: str) -> str:
+    """``name`` if it is an IANA time zone name (``Europe/Berlin``, ``UTC``); else ValueError with the
+    closest names. Checked with the standard library's ``zoneinfo`` (tz database from the system or the
+    ``tzdata`` package)."""
+    import difflib
+    from zoneinfo import ZoneInfo, ZoneInfoNotFoundError, available_timezones
+
+    known = available_timezones()
+    try:
+        ZoneInfo(name)
+        if name in known:
+            return name
+    except (ZoneInfoNotFoundError, ValueError, OSError):
+        pass
+    close = [z for z in known if z.lower() == name.lower()] or difflib.get_close_matches(name, known, n=2)
+    hint = f"did you mean {' or '.join(repr(z) for z in close)}?" if close else "e.g. 'Europe/Berlin' or 'UTC'"
+    raise ValueError(f"{name!r} is not an IANA time zone name; {hint}")
+
+
+def check_cron(expr: str) -> str:
+    """``expr`` if it is a 5-field cron expression (minute hour day-of-month month day-of-week); else
+    ValueError saying which field is wrong. Parsed with ``cronsim`` (a cron parser that Prefect's own
+    dependencies install); Prefect's schedule (``prefect.schedules.Cron``) reads the same five fields."""
+    from cronsim import CronSim, CronSimError
+
+    fields = expr.split()
+    example = "e.g. '30 2 * * *' for 02:30 every day"
+    if len(fields) != 5:
+        raise ValueError(f"{expr!r} has {len(fields)} field(s); a cron schedule has 5 (minute hour "
+                         f"day-of-month month day-of-week), {example}")
+    try:
+        CronSim(expr, datetime.datetime(2026, 1, 1))
+    except CronSimError as exc:
+        raise ValueError(f"{expr!r} is not a valid cron schedule ({exc}); {example}") from None
+    return expr
+
+
 class RuntimeConfig(_Section):
     timezone: str = Field("UTC", description="IANA zone; 'yesterday' and the schedule use it.")
-    schedule: str = Field("30 2 * * *", description="Cron for the nightly deployment.")
+    schedule: str = Field("30 2 * * *", description="Cron for the nightly deployment (5 fields: minute hour "
+                          "day-of-month month day-of-week).")
     shadow: bool = Field(True, description="Train a plain shadow model beside the candidate.")
     runner: Literal["thread", "dask"] = Field("thread", description="Prefect task runner for the parallel parts "
                                              "of a night (files of a partition, blocks of users to score): "
@@ -241,6 +280,20 @@ class RuntimeConfig(_Section):
     lock_stale_seconds: int = Field(4 * 3600, ge=60, description="A store lock older than this with a dead "
                                     "holder is taken over.")
     min_ratings_to_train: int = Field(1, ge=1, description="Skip training on a date with fewer ratings in the window.")
+    min_free_mb: int = Field(200, ge=0, description="Commands that write refuse to start when the workspace's disk "
+                             "has less free space than this (MB); 0 = no check. A night writes a version (model, "
+                             "predictions), store and report files; 200 MB covers the demo many times over "
+                             "(common practice, no source): raise it to a few versions' size for real data.")
+
+    @field_validator("timezone")
+    @classmethod
+    def _zone(cls, v: str) -> str:
+        return check_timezone(v)
+
+    @field_validator("schedule")
+    @classmethod
+    def _cron(cls, v: str) -> str:
+        return check_cron(v)
 
 
 class DriftConfig(_Section):
@@ -319,14 +372,19 @@ class Config(_Section):
 
 
 def _format_error(err: ValidationError, source: str, prefix: tuple[str, ...] = ()) -> str:
-    lines = [f"invalid config in {source}:"]
+    """One line per problem (key, what is wrong, the value given); a single problem is one line in all."""
+    problems = []
     for e in err.errors():
         key = ".".join(str(p) for p in (*prefix, *e["loc"])) or "<top level>"
         if e["type"] == "extra_forbidden":
-            lines.append(f"  {key}: unknown key (check spelling; see configs/example.toml)")
-        else:
-            lines.append(f"  {key}: {e['msg']} (got {e.get('input')!r})")
-    return "\n".join(lines)
+            problems.append(f"{key}: unknown key (check spelling; see configs/example.toml)")
+            continue
+        msg = str(e["msg"]).removeprefix("Value error, ")
+        given = repr(e.get("input"))
+        problems.append(f"{key}: {msg}" + ("" if given in msg else f" (got {given})"))
+    if len(problems) == 1:
+        return f"invalid config in {source}: {problems[0]}"
+    return "\n".join([f"invalid config in {source}:"] + [f"  {p}" for p in problems])
 
 
 def parse_config(raw: dict, source: str = "<dict>") -> Config:

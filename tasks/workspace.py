@@ -19,6 +19,8 @@ Layout under the workspace root (all created on demand)::
 from __future__ import annotations
 
 import os
+import shutil
+import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -41,6 +43,51 @@ def overlaps(a: str | os.PathLike, b: str | os.PathLike) -> bool:
     return x == y or x in y.parents or y in x.parents
 
 
+class WorkspaceError(ValueError):
+    """The workspace cannot be used as asked (missing, a file, not writable, disk too full); the message
+    names the path and the fix."""
+
+
+#: How every message tells a user to point at another workspace.
+POINT_AT = "--workspace DIR, TAREWISE_WORKSPACE=DIR or paths.workspace in the config"
+
+
+def _nearest_existing(path: Path) -> Path:
+    """``path`` or its closest ancestor that exists (a folder, or a file blocking the way)."""
+    while not os.path.lexists(path) and path != path.parent:
+        path = path.parent
+    return path
+
+
+def check_writable(path: str | os.PathLike, min_free_mb: float = 0.0) -> Path:
+    """The resolved workspace root, after checking that a run can write there: the path (or, for a
+    workspace not made yet, the folder it will be made in) is a folder, a file can be created in it,
+    and its disk has at least ``min_free_mb`` MB free (0: not checked). Raises :class:`WorkspaceError`.
+
+    Writability is tried (a file is created and removed), not read from the permission bits: root may
+    write whatever the bits say, and ACLs or a read-only mount can refuse what they allow."""
+    root = Path(path).expanduser().resolve()
+    base = _nearest_existing(root)
+    if not base.is_dir():
+        what = "is a file, not a folder" if base == root else f"cannot be made: {base} is a file"
+        raise WorkspaceError(f"workspace {root} {what}; point at a folder with {POINT_AT}")
+    try:
+        fd, probe = tempfile.mkstemp(prefix=".tarewise-write-check-", dir=base)
+        os.close(fd)
+        os.unlink(probe)
+    except OSError as exc:
+        where = "" if base == root else f" (its nearest existing folder {base})"
+        raise WorkspaceError(f"workspace {root}{where} is not writable: {exc.strerror}; make it writable or "
+                             f"point at another folder with {POINT_AT}") from None
+    if min_free_mb > 0:
+        free_mb = shutil.disk_usage(base).free / 1e6
+        if free_mb < min_free_mb:
+            raise WorkspaceError(f"workspace {root}: only {free_mb:.0f} MB free on its disk, less than "
+                                 f"runtime.min_free_mb = {min_free_mb}; free some space (`tarewise prune` removes "
+                                 f"old versions) or point at another disk with {POINT_AT}")
+    return root
+
+
 @dataclass(frozen=True)
 class Workspace:
     """Typed access to the workspace layout. State lives on a local (or mounted POSIX) filesystem:
@@ -59,6 +106,16 @@ class Workspace:
         p = p.removeprefix("file://")
         root = Path(p).expanduser().resolve()
         root.mkdir(parents=True, exist_ok=True)
+        return cls(root)
+
+    @classmethod
+    def existing(cls, path: str | os.PathLike) -> "Workspace":
+        """The workspace at ``path`` without creating anything; :class:`WorkspaceError` when there is no
+        folder there (for commands that only read)."""
+        root = Path(str(path).removeprefix("file://")).expanduser().resolve()
+        if not root.is_dir():
+            what = "is a file, not a folder" if root.exists() else "does not exist"
+            raise WorkspaceError(f"workspace {root} {what}")
         return cls(root)
 
     @property

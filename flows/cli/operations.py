@@ -14,7 +14,8 @@ from typing import Optional
 
 import typer
 
-from flows.cli.common import ConfigOpt, LogsOpt, SharedOpt, WorkspaceOpt, console, err, load, prefect_env
+from flows.cli.common import ConfigOpt, LogsOpt, SharedOpt, VerboseOpt, WorkspaceOpt, console, err, load, prefect_env
+from flows.cli.preflight import check_date, check_logs, existing_workspace, writable_workspace
 
 
 def rollback(to: str = typer.Option(..., "--to", help="Version id to make live again (see `tarewise versions`)."),
@@ -24,14 +25,13 @@ def rollback(to: str = typer.Option(..., "--to", help="Version id to make live a
     """Make an earlier version live again (one atomic switch), recorded in the run ledger; then the
     shared copy, if one is set, follows."""
     cfg = load(config, None, workspace, shared)
+    ws = existing_workspace(cfg, config, workspace)
     from tasks.lock import LockHeld
     from tasks.operate.rollback import RollbackError, rollback as do_rollback
-    from tasks.workspace import Workspace
     try:
-        out = do_rollback(Workspace.at(cfg.paths.workspace), to, reason, cfg.runtime.timezone,
-                          cfg.runtime.lock_stale_seconds)
+        out = do_rollback(ws, to, reason, cfg.runtime.timezone, cfg.runtime.lock_stale_seconds)
     except (RollbackError, LockHeld) as exc:
-        err.print(f"[bold red]rollback refused[/]: {exc}", highlight=False)
+        err.print(f"[bold red]rollback refused[/]: {exc}", highlight=False, soft_wrap=True)
         raise typer.Exit(1)
     if out["run_id"] is None:
         console.print(f"{to} is already live; nothing changed")
@@ -51,24 +51,18 @@ def prune(as_of: Optional[str] = typer.Option(None, "--as-of", help="Reference d
           shared: Optional[str] = SharedOpt) -> None:
     """Apply the retention settings: old versions (never live or pinned), quarantine and metrics by days;
     then the shared copy, if one is set, follows."""
+    if as_of is not None:
+        as_of = check_date(as_of, "--as-of", "reference date")
     cfg = load(config, None, workspace, shared)
-    from tasks.dates import DateError, parse_date
+    ws = existing_workspace(cfg, config, workspace)
     from tasks.lock import LockHeld, workspace_lock
     from tasks.operate.retention import apply_retention, default_as_of
     from tasks.publish.versions import VersionError
-    from tasks.workspace import Workspace
-    ws = Workspace.at(cfg.paths.workspace)
-    if as_of is not None:
-        try:
-            parse_date(as_of, "--as-of")
-        except DateError as exc:
-            err.print(f"--as-of: {exc}")
-            raise typer.Exit(2)
     try:
         with workspace_lock(ws.lock, "prune", cfg.runtime.lock_stale_seconds):
             result = apply_retention(ws, cfg.retention, as_of or default_as_of(ws, cfg.runtime.timezone))
     except (LockHeld, VersionError) as exc:   # a damaged live pointer: which version to protect is unknown
-        err.print(f"[bold red]prune refused[/]: {exc}", highlight=False)
+        err.print(f"[bold red]prune refused[/]: {exc}", highlight=False, soft_wrap=True)
         raise typer.Exit(1)
     console.print(result.summary(), highlight=False)
     _share_after(cfg, "prune is done here")
@@ -105,10 +99,10 @@ def _shared_copy_command(cfg, what: str):
     try:
         yield ws, SharedCopy.at(cfg.paths.shared, ws)
     except SharedCopyRefused as exc:
-        err.print(f"[bold red]{what} refused[/]: {exc}", highlight=False)
+        err.print(f"[bold red]{what} refused[/]: {exc}", highlight=False, soft_wrap=True)
         raise typer.Exit(2)
     except (SharedCopyError, LockHeld) as exc:
-        err.print(f"[bold red]{what} failed[/]: {exc}", highlight=False)
+        err.print(f"[bold red]{what} failed[/]: {exc}", highlight=False, soft_wrap=True)
         raise typer.Exit(1)
 
 
@@ -122,6 +116,7 @@ def share(dry_run: bool = typer.Option(False, "--dry-run", help="List what would
     """Bring the shared copy (paths.shared) up to date now: new partitions and versions, then the live
     pointer, then removals. Nights do this themselves; use it to catch up after a failed copy."""
     cfg = load(config, None, workspace, shared)
+    existing_workspace(cfg, config, workspace)
     from tasks.lock import workspace_lock
     from tasks.operate.shared_copy import plan_push, push
     with _shared_copy_command(cfg, "share") as (ws, target):
@@ -144,6 +139,7 @@ def restore(config: Optional[Path] = ConfigOpt, workspace: Optional[str] = Works
     and the live pointer if it has none. Nothing local is overwritten. (A night on a workspace that
     has never run does this by itself.)"""
     cfg = load(config, None, workspace, shared)
+    writable_workspace(cfg)
     from tasks.lock import workspace_lock
     from tasks.operate.shared_restore import restore as do_restore
     with _shared_copy_command(cfg, "restore") as (ws, target):
@@ -157,9 +153,11 @@ def serve(work_pool: Optional[str] = typer.Option(None, "--work-pool", help="Reg
           register_only: bool = typer.Option(False, "--register-only", help="Register (or update) the "
                                              "deployments and exit."),
           config: Optional[Path] = ConfigOpt, logs: Optional[str] = LogsOpt, workspace: Optional[str] = WorkspaceOpt,
-          verbose: bool = typer.Option(False, "--verbose", "-v")) -> None:
+          verbose: bool = VerboseOpt) -> None:
     """Register the nightly (cron) and backfill deployments and serve them; needs a Prefect server."""
     cfg = load(config, logs, workspace)
+    check_logs(cfg)
+    writable_workspace(cfg)
     prefect_env(cfg.paths.workspace, verbose)
     from prefect.settings import get_current_settings
     if not get_current_settings().api.url:
@@ -173,7 +171,7 @@ def serve(work_pool: Optional[str] = typer.Option(None, "--work-pool", help="Reg
     try:
         deployments = build_deployments(cfg)
     except ConfigError as exc:
-        err.print(f"[bold red]config error[/]: {exc}", highlight=False)
+        err.print(f"[bold red]config error[/]: {exc}", highlight=False, soft_wrap=True)
         raise typer.Exit(2)
     if work_pool or register_only:
         for d in deployments:

@@ -16,19 +16,21 @@ from flows.cli.common import console
 class LedgerProgress:
     """A rich progress bar counting finished runs of one ``kind`` in the ledgers ``ledgers()`` returns
     (workspaces; called on every poll, since a sweep's scratch workspaces appear while it runs). Only runs
-    started after the bar was made count. Time left = remaining nights x mean seconds per finished night
-    (before the first finishes: ``typical``, the median duration of earlier runs in the workspace, marked
-    "from earlier runs")."""
+    started after the bar was made count. Time left = remaining nights x mean seconds per finished night,
+    timed from the start of the first night (so Prefect's start-up, about 10 s, is not counted as part of
+    a night); before the first finishes: ``typical``, the median duration of earlier runs in the
+    workspace, marked "from earlier runs")."""
 
     def __init__(self, ledgers: Callable[[], list], kind: str, total: int, title: str, typical: Optional[float],
-                 out: Console = console) -> None:
+                 out: Console = console, since=None) -> None:
         import threading
 
         import pandas as pd
         from rich.progress import (BarColumn, MofNCompleteColumn, Progress, SpinnerColumn, TextColumn,
                                    TimeElapsedColumn)
         self._ledgers, self._kind, self._total, self._typical = ledgers, kind, total, typical
-        self._t0 = pd.Timestamp.now(tz="UTC")
+        # Runs started from here on count (``since``: a UTC timestamp, default now).
+        self._t0 = pd.Timestamp.now(tz="UTC") if since is None else pd.Timestamp(since)
         self._stop = threading.Event()
         self._progress = Progress(SpinnerColumn(), TextColumn("{task.description}"), BarColumn(),
                                   MofNCompleteColumn(), TimeElapsedColumn(), TextColumn("{task.fields[eta]}"),
@@ -59,7 +61,7 @@ class LedgerProgress:
         """Read the ledgers once and move the bar (the poller calls this every half second)."""
         import pandas as pd
         from tasks.ledger import read_ledger
-        finished, current = 0, ""
+        finished, current, first_start = 0, "", None
         for ws in self._ledgers():
             df = read_ledger(ws)
             df = df[(df["kind"] == self._kind) & (df["started_at"] >= self._t0)]
@@ -67,7 +69,11 @@ class LedgerProgress:
             running = df[df["status"] == "running"]
             if len(running):
                 current = str(running["run_date"].iloc[-1])
-        elapsed = (pd.Timestamp.now(tz="UTC") - self._t0).total_seconds()
+            if len(df):
+                started = pd.Timestamp(df["started_at"].min())
+                first_start = started if first_start is None else min(first_start, started)
+        # Timed from the first night's start: what came before it (Prefect's start-up) is not a night.
+        elapsed = (pd.Timestamp.now(tz="UTC") - (first_start or self._t0)).total_seconds()
         left = self._total - finished
         if finished:
             eta = f"about {duration(elapsed / finished * left)} left" if left else "finishing"

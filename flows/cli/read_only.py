@@ -1,7 +1,8 @@
 """Commands that look at the workspace and change nothing in it: ``versions``, ``status``, ``report``
 (re-renders a night's report from stored metrics) and ``score`` (writes only its ``--out`` file).
 
-None of them runs a flow, so none imports Prefect: they start in well under a second.
+None of them runs a flow, so none imports Prefect (they take a few seconds, mostly loading torch). None of them
+creates a workspace: with none at the configured path they say which paths were tried (exit 2).
 """
 
 from __future__ import annotations
@@ -12,6 +13,7 @@ from typing import Optional
 import typer
 
 from flows.cli.common import ConfigOpt, SharedOpt, WorkspaceOpt, console, err, fail, load
+from flows.cli.preflight import check_date, dates_held, existing_workspace, user_error
 from flows.cli.tables import alerts_table, runs_table, versions_table
 
 
@@ -21,6 +23,9 @@ def score(pairs: Path = typer.Option(..., "--pairs", help="Parquet with user_id,
           config: Optional[Path] = ConfigOpt, workspace: Optional[str] = WorkspaceOpt) -> None:
     """Score arbitrary (user_id, item_id) pairs; unknown ids get a fallback score and a flag."""
     cfg = load(config, None, workspace)
+    existing_workspace(cfg, config, workspace)
+    if not pairs.is_file():
+        user_error(f"--pairs: no file at {pairs}")
     from tasks.publish.scoring_io import score_pairs
     try:
         n, used, fallbacks = score_pairs(cfg, pairs, out, version)
@@ -32,14 +37,13 @@ def score(pairs: Path = typer.Option(..., "--pairs", help="Parquet with user_id,
 def versions_cmd(config: Optional[Path] = ConfigOpt, workspace: Optional[str] = WorkspaceOpt) -> None:
     """List versions with state, run date, held-out MAE and gate reason."""
     cfg = load(config, None, workspace)
+    ws = existing_workspace(cfg, config, workspace)
     from tasks.publish.versions import PointerDamaged, list_versions, read_pointer
-    from tasks.workspace import Workspace
-    ws = Workspace.at(cfg.paths.workspace)
     try:
         read_pointer(ws)
     except PointerDamaged as exc:
         err.print(f"[bold red]live version unknown[/]: {exc}", highlight=False, soft_wrap=True)
-    t, reasons = versions_table(list_versions(ws), f"versions in {cfg.paths.workspace}")
+    t, reasons = versions_table(list_versions(ws), f"versions in {ws.root}")
     console.print(t)
     for line in reasons:
         console.print(line, highlight=False, soft_wrap=True)
@@ -49,16 +53,18 @@ def report(date: Optional[str] = typer.Option(None, "--date", "-d", help="Night 
            config: Optional[Path] = ConfigOpt, workspace: Optional[str] = WorkspaceOpt) -> None:
     """Re-render a night's HTML report and its JSON twin from stored metrics."""
     cfg = load(config, None, workspace)
+    ws = existing_workspace(cfg, config, workspace)
+    from tasks.monitor.metrics_store import read_metrics
+    stored = sorted({str(d) for d in read_metrics(ws)["run_date"]})
+    known = dates_held(stored, "nights with stored metrics")
+    if date is not None:
+        check_date(date, "--date", "night", known)
+        if date not in stored:
+            user_error(f"no metrics stored for {date} in {ws.metrics}; {known}")
+    elif not stored:
+        user_error(f"no stored metrics in {ws.metrics}; run a night first")
+    date = date or stored[-1]
     from tasks.monitor.report import render_report
-    from tasks.workspace import Workspace
-    ws = Workspace.at(cfg.paths.workspace)
-    if date is None:
-        from tasks.monitor.metrics_store import read_metrics
-        m = read_metrics(ws)
-        if m.empty:
-            err.print(f"no stored metrics in {ws.metrics}; run a night first")
-            raise typer.Exit(1)
-        date = str(m["run_date"].max())
     try:
         html, js = render_report(ws, date, cfg)
     except Exception as exc:  # noqa: BLE001
@@ -73,14 +79,9 @@ def status(runs: int = typer.Option(10, "--runs", help="How many ledger rows to 
     """Live version, shared copy, lock, last runs from the ledger, recent alerts, and what is damaged or left
     over in the workspace with the fix for each. Exits 1 when a problem needs someone to act."""
     cfg = load(config, None, workspace, shared)
+    ws = existing_workspace(cfg, config, workspace)
     from tasks.operate.doctor import PROBLEM
     from tasks.operate.status import status as workspace_status
-    from tasks.workspace import Workspace
-    try:
-        ws = Workspace.at(cfg.paths.workspace)
-    except OSError as exc:
-        err.print(f"[bold red]status[/]: workspace {cfg.paths.workspace} cannot be opened: {exc}", highlight=False)
-        raise typer.Exit(2)
     # Paused deployments need a Prefect server: their check goes into extra_checks (issue 15, part B).
     s = workspace_status(ws, cfg.runtime.timezone, cfg.runtime.lock_stale_seconds, runs, days, extra_checks=())
     console.print(f"workspace: {s['workspace']}", highlight=False)

@@ -118,3 +118,92 @@ def sweep_table(rows: list[dict], start: str, end: str) -> Table:
             note = (note + "; " if note else "") + f"{r['skipped']} night(s) too little data"
         t.add_row(r["label"], str(r["nights"]), str(r["heldout"]), f(r["mae"]), f(r["shadow_mae"]), note)
     return t
+
+
+def print_night_files(workspace, out: dict) -> None:
+    """After a night: where its version folder and its report are (only those that exist)."""
+    from pathlib import Path
+    root = Path(workspace)
+    if out.get("version_id"):
+        console.print(f"version: {root / 'versions' / out['version_id']}", highlight=False, soft_wrap=True)
+    report = root / "reports" / f"{out['run_date']}.html"
+    if report.exists():
+        console.print(f"report:  {report}", highlight=False, soft_wrap=True)
+
+
+def demo_nights_table(ws, dates: list[str]) -> Table:
+    """One row per demo night from what the workspace holds: version and state, held-out MAE of the
+    candidate and of what the gate compared it with, rows quarantined, alerts raised."""
+    from tasks.ledger import latest_by_date
+    from tasks.operate.status import recent_alerts
+    from tasks.publish.versions import list_versions
+
+    latest = latest_by_date(ws)
+    manifests = {m.get("run_date"): m for m in list_versions(ws)}   # oldest first: the newest per night wins
+    alerts: dict[str, list[str]] = {}
+    if dates:
+        span = _day(max(dates)) - _day(min(dates)) + 1
+        for a in recent_alerts(ws, max(dates), span):
+            alerts.setdefault(str(a.get("run_date")), []).append(f"{a.get('severity')} {a.get('kind')}")
+    t = Table(title="demo nights")
+    for col in ("night", "version", "state", "held-out n", "MAE", "compared with", "quarantined", "alerts"):
+        t.add_column(col, overflow="fold")
+    f = lambda x: f"{x:.3f}" if isinstance(x, (int, float)) and x == x else "-"  # noqa: E731 (NaN != NaN)
+    for d in dates:
+        m = manifests.get(d, {})
+        metrics, gate = m.get("metrics") or {}, m.get("gate") or {}
+        cand, other = metrics.get("candidate") or {}, metrics.get(gate.get("compared_to", "")) or {}
+        row = latest.loc[d] if d in latest.index else None
+        quarantined = row["rows_quarantined"] if row is not None else None
+        t.add_row(d, m.get("version_id", "-"), m.get("state", "-" if row is None else str(row["status"])),
+                  str(cand.get("n", "-")), f(cand.get("mae")),
+                  f"{gate.get('compared_to')} {f(other.get('mae'))}" if other else gate.get("compared_to", "-"),
+                  "-" if quarantined is None or quarantined != quarantined else str(int(quarantined)),
+                  ", ".join(alerts.get(d, [])) or "-")
+    return t
+
+
+def _day(text: str) -> int:
+    import datetime as dt
+    return dt.date.fromisoformat(text).toordinal()
+
+
+def print_demo_summary(ws, dates: list[str], logs) -> None:
+    """The demo's closing words: the nights, what the invented logs contain, what tarewise made of them
+    with the file that shows each, the last night's report and the next commands, ready to paste."""
+    import json
+    from pathlib import Path
+
+    from flows.cli.preflight import command_prefix, shown_path
+    from tasks.operate.demo_story import summary
+
+    console.print(demo_nights_table(ws, dates))
+    story_file = Path(logs) / "_truth" / "params.json"
+    story = json.loads(story_file.read_text(encoding="utf-8")).get("story", {}) if story_file.exists() else {}
+    if story:
+        console.print("\n[bold]The invented logs contain[/]")
+        for d, what in story.items():
+            console.print(f"  {d}  {what}", highlight=False, soft_wrap=True)
+    findings = summary(ws, dates)
+    console.print("\n[bold]What tarewise made of them[/] (and the file that shows it)")
+    for fd in findings:
+        console.print(f"  {fd.run_date}  {fd.kind:<10}  {fd.text}\n{'':14}{shown_path(fd.path)}",
+                      highlight=False, soft_wrap=True)
+    if not findings:
+        console.print("  nothing held, quarantined or alerted")
+    tw, wsp = command_prefix(), shown_path(ws.root)
+    last = max(dates) if dates else None
+    if last and (ws.reports / f"{last}.html").exists():
+        console.print(f"\nlast night's report: {shown_path(ws.reports / f'{last}.html')}", highlight=False,
+                      soft_wrap=True)
+    skew = next((fd.run_date for fd in findings if fd.kind == "alert" and "skew" in fd.text), last)
+    # The backfill suggestion covers the nights after the last gap in the dates (the story's own nights).
+    first = next((b for a, b in zip(reversed(dates[:-1]), reversed(dates)) if _day(b) - _day(a) > 1), None) \
+        if dates else None
+    console.print("\nnext, ready to paste:")
+    for line in (f"{tw} status --workspace {wsp}", f"{tw} versions --workspace {wsp}",
+                 *([f"{tw} report --date {skew} --workspace {wsp}"] if skew else []),
+                 *([f"{tw} backfill --start {first or min(dates)} --end {last} --dry-run --logs {shown_path(logs)} "
+                    f"--workspace {wsp}"] if dates else [])):
+        console.print(f"  {line}", highlight=False, soft_wrap=True, markup=False)
+    console.print("(the demo's data is invented: a fictional library network's reading app)")

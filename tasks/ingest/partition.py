@@ -37,9 +37,25 @@ class PartitionListing:
     missing: bool = False
 
 
+def check_logs_folder(logs: str) -> None:
+    """Raise IngestError when the logs location itself is absent or is a file: a misspelt path, which is
+    a different thing from a day without a partition (``input.missing_partition`` never applies to it)."""
+    fs, base = resolve(logs)
+    try:
+        info = fs.get_file_info(base)
+    except (OSError, pa.ArrowException) as exc:
+        raise IngestError(f"logs folder {logs}: cannot be listed ({exc})") from exc
+    if info.type == pafs.FileType.NotFound:
+        raise IngestError(f"logs folder not found: {logs} (paths.logs, --logs or TAREWISE_LOGS); check the path")
+    if info.type != pafs.FileType.Directory:
+        raise IngestError(f"logs folder {logs} is a file; point paths.logs (--logs, TAREWISE_LOGS) at the folder "
+                          "holding the dt=YYYY-MM-DD partitions")
+
+
 def list_partition(logs: str, run_date: str, cfg: Config) -> PartitionListing:
     """List ``<logs>/dt=<run_date>/``. Raises IngestError for a missing or empty partition (unless
-    ``input.missing_partition = "skip"``) and for a partition that is a file."""
+    ``input.missing_partition = "skip"``), for a partition that is a file, and for a logs folder that
+    does not exist (whatever ``missing_partition`` says: a missing folder is a wrong path, not a quiet day)."""
     parse_date(run_date)
     fs, part = partition_path(logs, run_date)
     try:
@@ -48,10 +64,11 @@ def list_partition(logs: str, run_date: str, cfg: Config) -> PartitionListing:
         raise IngestError(f"partition {part}: cannot be listed ({exc})") from exc
     skip = cfg.input.missing_partition == "skip"
     if info.type == pafs.FileType.NotFound:
+        check_logs_folder(logs)
         if skip:
             return PartitionListing(run_date, part, [], missing=True)
-        raise IngestError(f"partition not found: {part} (run date {run_date}; set "
-                          "input.missing_partition = \"skip\" to treat a missing day as empty)")
+        raise IngestError(f"partition not found: {part} (no logs for run date {run_date}; the logs folder exists. "
+                          "If days without logs are normal here, set input.missing_partition = \"skip\")")
     if info.type != pafs.FileType.Directory:
         raise IngestError(f"partition {part} is a file, expected a folder of Parquet files")
     dangling = _dangling_links(fs, part)
@@ -75,10 +92,8 @@ def partition_path(logs: str, run_date: str) -> tuple[pafs.FileSystem, str]:
 
 def list_partition_dates(logs: str) -> list[str]:
     """Dates of the ``dt=YYYY-MM-DD`` folders under ``logs``, sorted (underscore/dot folders skipped)."""
+    check_logs_folder(logs)
     fs, base = resolve(logs)
-    info = fs.get_file_info(base)
-    if info.type == pafs.FileType.NotFound:
-        raise IngestError(f"logs folder not found: {logs}")
     dates = []
     for entry in fs.get_file_info(pafs.FileSelector(base, recursive=False)):
         name = entry.base_name

@@ -47,6 +47,7 @@ class PlannedNight:
     run_date: str
     action: str        # "run" | "skip"
     reason: str
+    stops: bool = False    # a run the backfill cannot get past (no partition, input.missing_partition = "error")
 
     def to_dict(self) -> dict:
         return asdict(self)
@@ -102,13 +103,26 @@ def plan_backfill(ws: Workspace, cfg: Config, start: str, end: str, force: bool 
             reason = f"interrupted before ({_describe(row)}); retrying"
         else:
             reason = "not run before"
+        stops = d not in in_logs and cfg.input.missing_partition == "error"
         if d not in in_logs:
             reason += (f"; no dt={d} partition in {cfg.paths.logs}: " +
-                       ("the backfill will stop here (input.missing_partition = 'error')"
-                        if cfg.input.missing_partition == "error"
+                       ("the backfill will stop here (input.missing_partition = 'error')" if stops
                         else "trains on the stored window only (input.missing_partition = 'skip')"))
-        plan.append(PlannedNight(d, "run", reason))
+        plan.append(PlannedNight(d, "run", reason, stops))
     return plan
+
+
+def reach(plan: list[PlannedNight]) -> tuple[int, PlannedNight | None]:
+    """How far a backfill of ``plan`` gets: (nights it will run, the night it stops at, or None when it
+    gets through). A night that stops the backfill fails, so it is not counted as run."""
+    ran = 0
+    for p in plan:
+        if p.action != "run":
+            continue
+        if p.stops:
+            return ran, p
+        ran += 1
+    return ran, None
 
 
 def chain_head(ws: Workspace, start: str, run_date: str) -> str | None:

@@ -138,7 +138,7 @@ def test_cli_rejects_contradictory_runner_flags(tmp_path):
     assert res.exit_code == 2 and "--dask-address needs --runner dask" in res.output
     res = CliRunner().invoke(app, ["backfill", "--start", DATES[0], "--end", DATES[1],
                                    "--workspace", str(tmp_path / "ws"), "--runner", "spark"])
-    assert res.exit_code == 2 and "runtime.runner" in res.output
+    assert res.exit_code == 2 and "--runner" in res.output and "'thread', 'dask'" in res.output
 
 
 def test_scoring_shards_are_whole_blocks_and_change_nothing():

@@ -76,3 +76,21 @@ def test_links_that_resolve_are_read_and_hidden_dangling_ones_ignored(logs: Path
     (logs / f"dt={DAY}" / ".#linked.parquet").symlink_to(logs / "nowhere")
     res = read_partition(str(logs), DAY, cfg)
     assert res.rows_read == 3 and [Path(f["path"]).name for f in res.files] == ["linked.parquet"]
+
+
+def test_a_missing_logs_folder_is_an_error_even_when_missing_days_are_skipped(tmp_path: Path) -> None:
+    """A misspelt logs path is not a quiet day: "skip" applies to a day's partition, never to the folder,
+    and the message does not suggest it."""
+    for policy in ("error", "skip"):
+        cfg = Config().updated({"input.missing_partition": policy})
+        with pytest.raises(IngestError, match=r"logs folder not found: .*no-such-folder") as info:
+            read_partition(str(tmp_path / "no-such-folder"), DAY, cfg)
+        assert "missing_partition" not in str(info.value)
+    with pytest.raises(IngestError, match="logs folder not found"):
+        list_partition_dates(str(tmp_path / "no-such-folder"))
+
+
+def test_a_missing_day_in_an_existing_folder_says_so(logs: Path, cfg: Config) -> None:
+    with pytest.raises(IngestError, match="the logs folder exists") as info:
+        read_partition(str(logs), DAY, cfg)
+    assert "logs folder not found" not in str(info.value)

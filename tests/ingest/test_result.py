@@ -72,5 +72,6 @@ def test_a_day_without_valid_rows_says_so(logs: Path, cfg: Config) -> None:
     some = read_partition(str(logs), DAY, cfg)
     assert not some.no_valid_rows and some.summary() == (f"run date {DAY}: 2 valid rows, 1 quarantined, "
                                                          "from 1 file(s)")
-    skip = read_partition(str(logs / "elsewhere"), DAY, cfg.updated({"input.missing_partition": "skip"}))
+    # A day with no partition in an existing logs folder (a missing folder is an error even then).
+    skip = read_partition(str(logs), "2026-10-30", cfg.updated({"input.missing_partition": "skip"}))
     assert skip.no_valid_rows and "0 valid rows: partition missing" in skip.summary()

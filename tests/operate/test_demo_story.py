@@ -1,0 +1,119 @@
+"""The demo tells its story (tasks/operate/demo_story.py, `tarewise demo`): over the committed invented
+nights a candidate is held with its reason, a bad batch goes to the quarantine and alerts fire, and the
+closing summary names each with the file that shows it. A second run says the nights are done; `run`
+prints where its version and report are. Real Prefect flows (the session's test API), real files."""
+
+from __future__ import annotations
+
+import json
+import shutil
+from pathlib import Path
+
+import pandas as pd
+import pyarrow.parquet as pq
+import pytest
+from typer.testing import CliRunner
+
+from conftest import REPO
+from tasks.operate import demo_story
+from tasks.publish.versions import list_versions
+from tasks.workspace import Workspace
+
+
+def _cli(*args: str):
+    from flows.cli import app
+    return CliRunner().invoke(app, list(args))
+
+
+@pytest.fixture(scope="module")
+def demo_run(prefect_harness, tmp_path_factory):
+    """``tarewise demo --dir <tmp>`` once, over every night of the committed sample."""
+    root = tmp_path_factory.mktemp("demo")
+    result = _cli("demo", "--dir", str(root))
+    assert result.exit_code == 0, result.output[-3000:]
+    return root, Workspace.at(root / "workspace"), result.output
+
+
+def test_summary_names_the_held_candidate_the_quarantined_batch_and_the_alerts(demo_run) -> None:
+    root, ws, out = demo_run
+    held = [m for m in list_versions(ws) if m["state"] == "held"]
+    assert [m["run_date"] for m in held] == [demo_story.TRIAL_DATE]
+    manifest = ws.versions / held[0]["version_id"] / "manifest.json"
+    reason = json.loads(manifest.read_text())["gate"]["reason"]
+    assert "held-out probe ratings" in reason and "gate.min_heldout" in reason
+    assert f"version {held[0]['version_id']} held: {reason}" in out and str(manifest) in out
+
+    quarantine = ws.quarantine / f"dt={demo_story.BAD_BATCH_DATE}" / "part-0.parquet"
+    rejected = pq.read_table(quarantine).to_pandas()
+    assert len(rejected) == demo_story.BAD_BATCH_ROWS
+    assert set(rejected["input_file"].map(lambda f: Path(f).name)) == {demo_story.BAD_BATCH_FILE}
+    assert rejected["reason"].str.startswith("rating outside the scale").all()
+    assert f"{demo_story.BAD_BATCH_ROWS} rows quarantined from {demo_story.BAD_BATCH_FILE}" in out
+    assert str(quarantine) in out
+
+    history = [json.loads(line) for line in ws.alerts.read_text().splitlines()]
+    raised = {(r["run_date"], r["kind"]) for r in history}
+    assert (demo_story.BAD_BATCH_DATE, "quarantine_share_high") in raised
+    assert (demo_story.CAMPAIGN[0], "skew_shift") in raised           # the campaign's first night
+    assert (demo_story.TRIAL_DATE, "probe_coverage_low") in raised
+    for night, kind in ((demo_story.BAD_BATCH_DATE, "quarantine_share_high"), (demo_story.CAMPAIGN[0], "skew_shift")):
+        assert f"alert {kind}" in out and str(ws.reports / f"{night}.html") in out
+        assert (ws.reports / f"{night}.html").exists()
+
+
+def test_demo_ends_with_the_last_report_and_commands_to_paste(demo_run) -> None:
+    root, ws, out = demo_run
+    last = ws.reports / "2026-11-12.html"
+    assert last.exists() and f"last night's report: {last}" in out
+    tail = out[out.index("next, ready to paste:"):]
+    for command in ("status", "versions", f"report --date {demo_story.CAMPAIGN[0]}", "backfill --start 2026-11-01"):
+        assert f" {command}" in tail and f"--workspace {ws.root}" in tail, command
+    assert "-m flows.cli" in tail or "tarewise" in tail
+
+
+def test_a_second_run_says_the_nights_are_done_and_publishes_nothing(demo_run) -> None:
+    root, ws, _ = demo_run
+    before = sorted(p.name for p in ws.versions.iterdir())
+    again = _cli("demo", "--dir", str(root))
+    assert again.exit_code == 0, again.output[-2000:]
+    assert "13 of 13 demo night(s) already done" in again.output and "nothing to run" in again.output
+    assert sorted(p.name for p in ws.versions.iterdir()) == before      # no "-2" versions
+
+
+def test_run_prints_the_version_folder_and_the_report(demo_run, tmp_path) -> None:
+    root, ws, _ = demo_run
+    copy = tmp_path / "ws"
+    shutil.copytree(ws.root, copy)
+    result = _cli("run", "--date", "2026-11-12", "-c", str(REPO / "configs" / "demo.toml"), "--logs",
+                  str(REPO / "sample_parquet"), "--workspace", str(copy))
+    assert result.exit_code == 0, result.output[-2000:]
+    assert f"version: {copy / 'versions' / 'v20261112-2'}" in result.output
+    assert f"report:  {copy / 'reports' / '2026-11-12.html'}" in result.output
+    assert (copy / "versions" / "v20261112-2" / "manifest.json").exists()
+
+
+def test_the_committed_sample_is_what_the_documented_command_writes(tmp_path) -> None:
+    """sample_parquet/README.md: ``python -m tasks.operate.demo_story --out sample_parquet``."""
+    assert demo_story.main(["--out", str(tmp_path)]) == 0
+    sample = REPO / "sample_parquet"
+    made = sorted(p.relative_to(tmp_path) for p in tmp_path.rglob("*.parquet"))
+    assert made == sorted(p.relative_to(sample) for p in sample.rglob("*.parquet"))
+    for rel in made:
+        pd.testing.assert_frame_equal(pq.read_table(tmp_path / rel).to_pandas(), pq.read_table(sample / rel).to_pandas())
+    assert json.loads((tmp_path / "_truth" / "params.json").read_text())["story"] == \
+        json.loads((sample / "_truth" / "params.json").read_text())["story"]
+    assert sum(f.stat().st_size for f in sample.rglob("*") if f.is_file()) < 1_000_000
+
+
+def test_by_default_the_demo_uses_the_workspace_demo_toml_names(prefect_harness, tmp_path, monkeypatch) -> None:
+    """Run from a fresh folder with no --dir: the workspace is configs/demo.toml's paths.workspace,
+    relative to that folder, and git ignores the demo's folder."""
+    import tomllib
+    named = tomllib.loads((REPO / "configs" / "demo.toml").read_text())["paths"]["workspace"]
+    monkeypatch.chdir(tmp_path)
+    monkeypatch.setenv("TAREWISE_WORKSPACE", str(tmp_path / "a-real-workspace"))   # the demo ignores it
+    result = _cli("demo", "--nights", "1")
+    assert result.exit_code == 0, result.output[-2000:]
+    assert (tmp_path / named / "ledger" / "runs.parquet").exists()
+    assert not (tmp_path / "a-real-workspace").exists()
+    assert f"{Path(named).parts[0]}/" in (REPO / ".gitignore").read_text().splitlines()
