@@ -324,6 +324,24 @@ class AlertsConfig(_Section):
         "report without sending (a replay would page people with stale alerts); 'send' delivers them.")
 
 
+class LabelsConfig(_Section):
+    """Words the report and the alerts use for a deployment's own domain."""
+    user: str = Field("user", min_length=1, description="One person who rates, as the report calls them "
+                      "(e.g. 'member', 'student', 'customer').")
+    users: str = Field("users", min_length=1, description="Plural of labels.user.")
+    item: str = Field("item", min_length=1, description="One thing that is rated (e.g. 'title', 'course', 'recipe').")
+    items: str = Field("items", min_length=1, description="Plural of labels.item.")
+    rating_unit: str = Field("rating points", min_length=1, description="Unit written after a rating or a "
+                             "difference of ratings (e.g. 'stars': '+0.30 stars').")
+    rating_symbol: str = Field("", description="Short form of the unit beside the report's headline numbers "
+                               "(e.g. '\u2605'); empty: labels.rating_unit.")
+
+    @property
+    def unit_short(self) -> str:
+        """The unit beside a headline number: ``rating_symbol``, else ``rating_unit``."""
+        return self.rating_symbol or self.rating_unit
+
+
 class Config(_Section):
     paths: PathsConfig = PathsConfig()
     input: InputConfig = InputConfig()
@@ -338,6 +356,7 @@ class Config(_Section):
     runtime: RuntimeConfig = RuntimeConfig()
     drift: DriftConfig = DriftConfig()
     alerts: AlertsConfig = AlertsConfig()
+    labels: LabelsConfig = LabelsConfig()
 
     def with_overrides(self, logs: str | None = None, workspace: str | None = None,
                        shared: str | None = None) -> "Config":
