@@ -212,6 +212,13 @@ class GateConfig(_Section):
     tolerance_mae: float = Field(0.01, ge=0.0, description="Candidate may be at most this much worse than live.")
     max_segment_regression: float = Field(0.05, ge=0.0, description="No segment's MAE may rise by more than this.")
     min_heldout: int = Field(10, ge=0, description="Fewer held-out probe ratings than this: the gate holds.")
+    hold_on_alert: Literal["off", "warning", "critical"] = Field(
+        "off", description="Hold a candidate whose night raised an alert of this severity or worse ('warning' "
+        "holds on warnings and critical alerts). 'off': alerts never hold; the held-out probe ratings judge "
+        "the candidate whatever the night's selection skew did.")
+    require_approval: bool = Field(False, description="A candidate that passes every rule waits as held with "
+                                   "the reason 'awaiting approval' until `tarewise approve` makes it live (or "
+                                   "`tarewise reject` turns it down); both are recorded in the run ledger.")
 
 
 class PublishConfig(_Section):

@@ -95,3 +95,55 @@ def test_segments_are_judged_in_label_order():
     cand = model_errors(0.80, segments={"up": (1.0, 30), "down": (1.0, 30)})
     live = model_errors(0.80, segments={"up": (0.8, 30), "down": (0.8, 30)})
     assert "segment 'down'" in decide(Evaluation(cand, live=live), GATE).reason
+
+
+# --------------------------------------------------------------------------------------------------
+# Rules an operator switches on: hold on the night's alerts, wait for a person's approval
+# --------------------------------------------------------------------------------------------------
+
+PASSING = Evaluation(model_errors(0.805), shadow=model_errors(0.9), live=model_errors(0.80))
+SKEW = [("critical", "skew_shift")]
+
+
+def test_alerts_hold_nothing_by_default_but_are_named_in_the_reason():
+    d = decide(PASSING, GATE, SKEW)
+    assert d.promote and GATE.hold_on_alert == "off"
+    assert d.reason == ("held-out MAE 0.8050 vs live 0.8000: within tolerance; tonight's critical skew_shift "
+                        "alert does not hold it (gate.hold_on_alert = \"off\")")
+
+
+@pytest.mark.parametrize("setting, severity, held", [
+    ("critical", "critical", True), ("critical", "warning", False),
+    ("warning", "warning", True), ("warning", "critical", True), ("warning", "info", False),
+    ("off", "critical", False),
+])
+def test_hold_on_alert_holds_on_that_severity_or_worse(setting, severity, held):
+    d = decide(PASSING, GATE.model_copy(update={"hold_on_alert": setting}), [(severity, "skew_shift")])
+    assert d.promote is not held and d.compared_to == "live"
+    if held:
+        assert d.reason == (f"tonight's {severity} skew_shift alert holds it (gate.hold_on_alert = \"{setting}\"); "
+                            "on the held-out probe ratings alone it would be promoted (held-out MAE 0.8050 vs "
+                            "live 0.8000: within tolerance)")
+
+
+def test_hold_on_alert_names_every_alert_that_holds_and_leaves_an_earlier_hold_alone():
+    gate = GATE.model_copy(update={"hold_on_alert": "warning"})
+    d = decide(PASSING, gate, [("critical", "skew_shift"), ("warning", "quarantine_share_high")])
+    assert not d.promote and d.reason.startswith(
+        "tonight's critical skew_shift and warning quarantine_share_high alert holds it")
+    worse = decide(Evaluation(model_errors(0.82), live=model_errors(0.80)), gate, SKEW)
+    assert not worse.promote and worse.reason.startswith("held-out MAE 0.8200 worse than live")
+    assert decide(PASSING, gate, []).promote      # a quiet night is promoted
+
+
+def test_require_approval_holds_a_passing_candidate_awaiting_approval():
+    gate = GATE.model_copy(update={"require_approval": True})
+    d = decide(PASSING, gate)
+    assert (d.promote, d.awaiting_approval) == (False, True)
+    assert d.reason == "awaiting approval (gate.require_approval): held-out MAE 0.8050 vs live 0.8000: within tolerance"
+    assert d.to_dict()["awaiting_approval"] is True
+    # a candidate the rules hold is held for that reason, not sent for approval
+    for held in (decide(Evaluation(model_errors(0.82), live=model_errors(0.80)), gate),
+                 decide(PASSING, gate.model_copy(update={"hold_on_alert": "critical"}), SKEW)):
+        assert not held.promote and not held.awaiting_approval and "awaiting approval" not in held.reason
+        assert "awaiting_approval" not in held.to_dict()
