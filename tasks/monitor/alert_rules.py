@@ -73,10 +73,11 @@ from tasks.monitor.night_metrics import jsonable
 #: Consistency constant: 1.4826 * MAD estimates sigma for normal data (Rousseeuw & Croux 1993).
 MAD_TO_SIGMA = 1.4826
 
-#: Watched selection-skew metrics -> (plain name, unit).
+#: Watched selection-skew metrics -> (plain name, unit); "rating" is the rating scale's unit, written as
+#: ``labels.rating_unit`` says.
 SKEW_METRICS: dict[str, tuple[str, str]] = {
-    "skew_mean_shift": ("organic minus probe mean rating", "stars"),
-    "skew_w1": ("Wasserstein-1 distance between organic and probe ratings", "stars"),
+    "skew_mean_shift": ("organic minus probe mean rating", "rating"),
+    "skew_w1": ("Wasserstein-1 distance between organic and probe ratings", "rating"),
 }
 
 #: Fixed part of the floor of the band's scale per metric (see module docstring), as a function of
@@ -109,7 +110,8 @@ class Alert:
 
     Folding fields (set by :func:`fold_alerts`): ``alert_id``, ``status`` ("new" = first night of an
     episode, delivered; "ongoing" = folded into an earlier alert, recorded only), ``count``,
-    ``first_date``, ``last_date``.
+    ``first_date``, ``last_date``. ``advice`` (set by ``alert_advice.with_advice``): what to check, which
+    command shows more, when the alert clears.
     """
     kind: str
     severity: str
@@ -125,6 +127,7 @@ class Alert:
     first_date: str = ""
     last_date: str = ""
     extra: Mapping[str, object] = field(default_factory=dict)
+    advice: Mapping[str, str] = field(default_factory=dict)
 
     def to_record(self) -> dict:
         """Plain JSON-able dict (the alert part of a history record)."""
@@ -228,9 +231,12 @@ def skew_alerts(tonight: Mapping, history: pd.DataFrame, cfg: Config) -> list[Al
     severity = "critical" if excess > 2 * d.mad_k else "warning"
     direction = "above" if value > band.hi else "below"
     digits = 3 if unit == "bits" else 2
+    unit = cfg.labels.rating_unit if unit == "rating" else unit
+    users = cfg.labels.users
     text = (f"Selection skew moved: the {name} is {value:.{digits}f} {unit} tonight, {direction} its usual "
             f"range of {band.lo:.{digits}f} to {band.hi:.{digits}f} {unit} over the previous {band.n} nights "
-            f"(median {band.median:.{digits}f}). Members are choosing what to rate differently than of late.")
+            f"(median {band.median:.{digits}f}). {users[:1].upper() + users[1:]} are choosing what to rate "
+            "differently than of late.")
     return [Alert(kind=KIND_SKEW, severity=severity, metric=metric, value=value, band=(band.lo, band.hi),
                   explanation=text, run_date=run_date, also=tuple(m for _, m, _, _ in outside[1:]),
                   extra={"median": band.median, "scale": band.scale, "baseline_nights": band.n,
@@ -241,6 +247,7 @@ def guard_alerts(tonight: Mapping, cfg: Config) -> list[Alert]:
     """Absolute guards (no history needed): probe coverage, quarantine share, candidate vs shadow."""
     run_date = str(tonight["run_date"])
     out: list[Alert] = []
+    users, unit = cfg.labels.users, cfg.labels.rating_unit
 
     def num(key: str) -> float:
         v = tonight.get(key)
@@ -254,7 +261,7 @@ def guard_alerts(tonight: Mapping, cfg: Config) -> list[Alert]:
         out.append(Alert(
             kind=KIND_COVERAGE, severity="critical", metric="probe_coverage", value=coverage,
             band=(cfg.drift.min_probe_coverage, None), run_date=run_date,
-            explanation=(f"Only {coverage:.2%} of tonight's {int(active)} active members gave a probe rating "
+            explanation=(f"Only {coverage:.2%} of tonight's {int(active)} active {users} gave a probe rating "
                          f"(minimum {cfg.drift.min_probe_coverage:.2%}). Probe errors, reference users and the "
                          f"held-out evaluation all rest on probe ratings: check the random probe programme.")))
 
@@ -276,7 +283,7 @@ def guard_alerts(tonight: Mapping, cfg: Config) -> list[Alert]:
             out.append(Alert(
                 kind=KIND_WORSE, severity="critical" if clear else "warning", metric="candidate_mae",
                 value=cand, band=(None, shadow + cfg.gate.tolerance_mae), run_date=run_date,
-                explanation=(f"The candidate's held-out probe MAE ({cand:.3f} stars) is {gap:.3f} stars worse than "
+                explanation=(f"The candidate's held-out probe MAE ({cand:.3f} {unit}) is {gap:.3f} {unit} worse than "
                              f"the plain shadow model's ({shadow:.3f}); tolerance {cfg.gate.tolerance_mae:.3f}. "
                              + ("Their confidence intervals do not overlap." if clear else
                                 "Their confidence intervals overlap, so this may be sampling noise."))))

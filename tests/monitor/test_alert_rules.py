@@ -27,7 +27,7 @@ from tasks.monitor.alert_rules import (
     robust_band,
     skew_alerts,
 )
-from tasks.config import Config, ConfigError
+from tasks.config import Config, LabelsConfig, ConfigError
 from tasks.monitor.night_metrics import compute_night_metrics
 
 CFG = Config()
@@ -71,7 +71,12 @@ def test_flat_history_does_not_alert_on_float_noise_but_does_on_a_real_move():
     [alert] = skew_alerts(_night("2024-04-15", skew_mean_shift=0.60, skew_w1=0.45), hist, CFG)
     assert alert.kind == KIND_SKEW and alert.metric == "skew_mean_shift" and alert.extra["floored"]
     assert alert.band[1] == pytest.approx(0.40 + 4 * 0.02 * math.sqrt(1 + math.pi / 28))
-    assert "0.60 stars tonight, above its usual range" in alert.explanation
+    assert "0.60 rating points tonight, above its usual range" in alert.explanation
+    assert alert.explanation.endswith("Users are choosing what to rate differently than of late.")
+    # a deployment's own words come from [labels]
+    words = CFG.model_copy(update={"labels": LabelsConfig(users="members", rating_unit="stars")})
+    [own] = skew_alerts(_night("2024-04-15", skew_mean_shift=0.60, skew_w1=0.45), hist, words)
+    assert "0.60 stars tonight" in own.explanation and "Members are choosing" in own.explanation
 
 
 def test_tonight_sampling_noise_widens_the_band():
