@@ -18,19 +18,23 @@ import math
 import re
 from collections.abc import Mapping, Sequence
 from pathlib import Path
+from types import SimpleNamespace
 
 import jinja2
 import pandas as pd
+from markupsafe import Markup, escape
 
-from tasks.config import Config
+from tasks.config import Config, LabelsConfig
 from tasks.evaluate.evaluation import MODELS
 from tasks.evaluate.segments import SEGMENTS
 from tasks.files import atomic_write_bytes
+from tasks.monitor.alert_advice import advice
 from tasks.monitor.alert_history import FINAL, night_alerts, read_history
-from tasks.monitor.alert_rules import KIND_SKEW, SKEW_METRICS, WITHDRAWN, metric_band
+from tasks.monitor.alert_rules import KIND_SKEW, WITHDRAWN, metric_band
 from tasks.monitor.metrics_store import read_metrics, row_of
 from tasks.monitor.night_metrics import jsonable
 from tasks.monitor.report_charts import (
+    both_widths,
     chart_mae_trend,
     chart_prediction_shift,
     chart_rating_histograms,
@@ -65,6 +69,23 @@ def fmt(x: object, digits: int = 2, signed: bool = False, unit: str = "") -> str
         return "\u2014"
     s = f"{f:+.{digits}f}" if signed else f"{f:.{digits}f}"
     return f"{s} {unit}".rstrip()
+
+
+def pvalue(x: object) -> str:
+    """A p-value with four decimals; below 1e-4 as ``< 1e-4`` (four zeros would read as "impossible")."""
+    f = _num(x)
+    if f is None:
+        return "\u2014"
+    return "< 1e-4" if f < 1e-4 else f"{f:.4f}"
+
+
+_CODE = re.compile(r"`([^`]+)`")
+
+
+def code_spans(text: object) -> Markup:
+    """Text with each `backticked` part (a command) set as ``<code>``; everything is escaped."""
+    parts = _CODE.split(str(text))
+    return Markup("").join(Markup("<code>{}</code>").format(p) if i % 2 else escape(p) for i, p in enumerate(parts))
 
 
 def pct(x: object, digits: int = 1) -> str:
@@ -125,6 +146,7 @@ def _delivery_text(rec: Mapping) -> str:
 
 
 def _alert_view(rec: Mapping) -> dict:
+    """One alert card: what moved (explanation, value, band) and what to do (advice: check, more, clears)."""
     band = rec.get("band") or [None, None]
     lo, hi = (band + [None, None])[:2]
     unit = "bits" if rec.get("metric") == "skew_js" else ""
@@ -134,7 +156,7 @@ def _alert_view(rec: Mapping) -> dict:
         "band": f"{fmt(lo, 3)} \u2026 {fmt(hi, 3)}", "explanation": rec.get("explanation", ""),
         "status": rec.get("status", ""), "count": rec.get("count", 1), "first_date": rec.get("first_date", ""),
         "last_date": rec.get("last_date", ""), "also": ", ".join(rec.get("also") or []),
-        "delivery": _delivery_text(rec),
+        "delivery": _delivery_text(rec), "advice": rec.get("advice") or {},
     }
 
 
@@ -144,12 +166,16 @@ def build_report(run_date: str, cfg: Config, row: Mapping, series: pd.DataFrame,
     ``row``: the night's stored metrics row (``metrics_store.row_of``); ``series``: the stored series
     (nights after ``run_date`` are ignored); ``history``: every alert history record, in file order.
     """
-    alerts = night_alerts(history, run_date)
+    # Records written before alerts carried advice get it from their kind, in today's words.
+    alerts = [a if a.get("advice") else {**a, "advice": advice(str(a.get("kind")), str(a.get("severity")),
+                                                                run_date, cfg)}
+              for a in night_alerts(history, run_date)]
     withdrawn = {(r.get("alert_id"), r.get("run_date")) for r in history if r.get("phase") == WITHDRAWN}
     skew_dates = {str(r.get("run_date")) for r in history if r.get("kind") == KIND_SKEW
                   and (r.get("alert_id"), r.get("run_date")) not in withdrawn}
     detail = _detail(row)
     trend = _trend_frame(series, run_date, cfg, skew_dates)
+    unit = cfg.labels.rating_unit
     clean_row = {k: v for k, v in jsonable(row).items() if k != "detail_json"}
     return {
         "format": REPORT_FORMAT,
@@ -159,22 +185,23 @@ def build_report(run_date: str, cfg: Config, row: Mapping, series: pd.DataFrame,
         "alerts": jsonable(alerts),
         "trend": jsonable(trend.to_dict(orient="records")),
         "charts": {
-            "rating_histograms": chart_rating_histograms(detail),
-            "skew_trend": chart_skew_trend(trend),
-            "prediction_shift": chart_prediction_shift(detail),
-            "mae_trend": chart_mae_trend(trend),
+            "rating_histograms": both_widths(chart_rating_histograms, detail, unit),
+            "skew_trend": both_widths(chart_skew_trend, trend, unit),
+            "prediction_shift": both_widths(chart_prediction_shift, detail, unit),
+            "mae_trend": both_widths(chart_mae_trend, trend, unit),
         },
         "settings": {"baseline_nights": cfg.drift.baseline_nights, "mad_k": cfg.drift.mad_k,
                      "min_baseline_nights": cfg.drift.min_baseline_nights,
                      "skew_margin": cfg.evaluate.skew_margin, "confidence": cfg.evaluate.confidence,
-                     "scale": [cfg.scale.min, cfg.scale.max, cfg.scale.step]},
+                     "scale": [cfg.scale.min, cfg.scale.max, cfg.scale.step],
+                     "labels": {**cfg.labels.model_dump(), "unit_short": cfg.labels.unit_short}},
     }
 
 
 def _environment() -> jinja2.Environment:
     env = jinja2.Environment(loader=jinja2.FileSystemLoader(str(TEMPLATES)), autoescape=True,
                              undefined=jinja2.ChainableUndefined, trim_blocks=True, lstrip_blocks=True)
-    env.filters.update(fmt=fmt, pct=pct, count=count)
+    env.filters.update(fmt=fmt, pct=pct, count=count, pvalue=pvalue, code_spans=code_spans)
     return env
 
 
@@ -186,6 +213,10 @@ def render_html(report: Mapping) -> str:
     verdict = ("quiet night: no alerts" if not severities else
                f"{len(severities)} alert{'s' if len(severities) != 1 else ''} "
                f"({', '.join(f'{severities.count(s)} {s}' for s in ('critical', 'warning', 'info') if s in severities)})")
+    eval_segments = d.get("evaluation_segments") or {}
+    # A segment column no model has a number for (e.g. "unknown": no probe ratings) is left out.
+    eval_columns = [seg for seg in SEGMENTS if any(
+        _num(((segs or {}).get(seg) or {}).get("mae")) is not None for segs in eval_segments.values())]
     template = _environment().get_template("report.html.j2")
     return template.render(
         r=report, m=m, d=d, verdict=verdict, worst=("critical" if "critical" in severities else
@@ -194,8 +225,12 @@ def render_html(report: Mapping) -> str:
         segments=[(name, (d.get("segments") or {}).get(name) or {}) for name in SEGMENTS],
         models=[(mdl, {s: m.get(f"{mdl}_{s}") for s in ("mae", "mae_lo", "mae_hi", "rmse", "rmse_lo", "rmse_hi", "n")})
                 for mdl in MODELS],
-        eval_segments=d.get("evaluation_segments") or {},
-        skew_names=SKEW_METRICS,
+        eval_segments=eval_segments, eval_columns=eval_columns,
+        # Under methods without reference users (the default per_user) every share is missing: no table.
+        reference_shares=d.get("reference_shares") or [],
+        show_reference=any(_num(x) is not None for x in d.get("reference_shares") or []),
+        # Attributes, not a dict: a label named like a dict method ("items") must stay the label.
+        L=SimpleNamespace(**report["settings"]["labels"]),
     )
 
 
@@ -231,23 +266,25 @@ def _md(text: object) -> str:
     return _MD_SPECIAL.sub(r"\\\1", str(text)).replace("\n", " ")
 
 
-def summary_table(row: Mapping, alerts: Sequence[Mapping]) -> list[dict]:
-    """Key numbers of the night as ``[{"metric", "value"}]`` rows (for a Prefect table artifact)."""
+def summary_table(row: Mapping, alerts: Sequence[Mapping], labels: LabelsConfig = LabelsConfig()) -> list[dict]:
+    """Key numbers of the night as ``[{"metric", "value"}]`` rows (for a Prefect table artifact), in the
+    words of ``labels``."""
+    unit, users = labels.rating_unit, labels.users
     rows = [
         ("night", str(row.get("run_date"))),
         ("alerts", str(len(alerts)) + (" (" + ", ".join(sorted({str(a.get('kind')) for a in alerts})) + ")"
                                       if alerts else "")),
-        ("selection skew tonight: organic \u2212 probe mean", fmt(row.get("skew_mean_shift"), 3, True, "stars")),
+        ("selection skew tonight: organic \u2212 probe mean", fmt(row.get("skew_mean_shift"), 3, True, unit)),
         ("selection skew tonight: Jensen-Shannon", fmt(row.get("skew_js"), 4, unit="bits")),
-        ("selection skew tonight: Wasserstein-1", fmt(row.get("skew_w1"), 3, unit="stars")),
-        ("members skewed up / down / neutral",
+        ("selection skew tonight: Wasserstein-1", fmt(row.get("skew_w1"), 3, unit=unit)),
+        (f"{users} skewed up / down / neutral",
          f"{pct(row.get('share_up'))} / {pct(row.get('share_down'))} / {pct(row.get('share_neutral'))}"),
         ("candidate MAE (held-out probes)", _mae_text(row, "candidate")),
         ("shadow MAE", _mae_text(row, "shadow")),
         ("live MAE", _mae_text(row, "live")),
         ("prediction shift PSI (candidate vs live)", fmt(row.get("pred_psi"), 4)),
         ("rows ingested / quarantined", f"{count(row.get('rows_ingested'))} / {count(row.get('rows_quarantined'))}"),
-        ("probe coverage of active members", pct(row.get("probe_coverage"), 2)),
+        (f"probe coverage of active {users}", pct(row.get("probe_coverage"), 2)),
     ]
     return [{"metric": k, "value": v} for k, v in rows]
 
@@ -259,7 +296,7 @@ def _mae_text(row: Mapping, model: str) -> str:
             f"{fmt(row.get(f'{model}_mae_hi'), 3)}]")
 
 
-def summary_markdown(row: Mapping, alerts: Sequence[Mapping]) -> str:
+def summary_markdown(row: Mapping, alerts: Sequence[Mapping], labels: LabelsConfig = LabelsConfig()) -> str:
     """A short Markdown summary of the night (for a Prefect markdown artifact); data is escaped."""
     lines = [f"# tarewise night {_md(row.get('run_date'))}", ""]
     if alerts:
@@ -271,5 +308,5 @@ def summary_markdown(row: Mapping, alerts: Sequence[Mapping]) -> str:
     else:
         lines.append("Quiet night: no alerts.")
     lines += ["", "| metric | value |", "| --- | --- |"]
-    lines += [f"| {_md(r['metric'])} | {_md(r['value'])} |" for r in summary_table(row, alerts)]
+    lines += [f"| {_md(r['metric'])} | {_md(r['value'])} |" for r in summary_table(row, alerts, labels)]
     return "\n".join(lines) + "\n"

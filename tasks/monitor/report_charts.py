@@ -3,6 +3,11 @@
 Object API only (nothing global is touched): rc settings apply inside each chart call, the SVG id salt
 is fixed and SVG metadata is dropped, so the same data gives the same bytes. Each chart returns None
 when there is nothing to draw.
+
+Every chart is drawn twice (:func:`both_widths`): ``wide`` for a desktop page and ``narrow`` for a
+phone (a figure about as wide as a phone's screen, fewer date ticks, legends above the plot), so its
+text stays about as large as the page's small print on either; the page picks one by screen width.
+Text is :data:`FONT_PT` points at the figure's own size (:data:`SIZES`, inches).
 """
 
 from __future__ import annotations
@@ -27,7 +32,12 @@ COLOURS = {
     "live": "#c08a1e", "band": "#e9e2d3", "alert": "#8c1d40", "ink": "#2a2d31", "grid": "#dedad2",
 }
 
-_SVG_RC = {"svg.hashsalt": "tarewise", "svg.fonttype": "path", "font.size": 9,
+#: Font size of every chart text (ticks, labels, legends), in points of the figure.
+FONT_PT = 9
+#: Figure sizes in inches (width, height): a small chart beside a table, a trend over nights, a phone's.
+SIZES = {"small": (6.4, 2.9), "trend": (10.0, 3.3), "narrow": (4.2, 3.3)}
+
+_SVG_RC = {"svg.hashsalt": "tarewise", "svg.fonttype": "path", "font.size": FONT_PT,
            "axes.edgecolor": COLOURS["grid"], "axes.labelcolor": COLOURS["ink"],
            "xtick.color": COLOURS["ink"], "ytick.color": COLOURS["ink"]}
 
@@ -41,9 +51,23 @@ def _charting(fn):
     return wrapper
 
 
-def _figure(width: float = 6.4, height: float = 2.9) -> Figure:
-    fig = Figure(figsize=(width, height), dpi=100, layout="constrained")
-    return fig
+def _figure(size: str) -> Figure:
+    return Figure(figsize=SIZES[size], dpi=100, layout="constrained")
+
+
+def both_widths(chart, *args) -> dict[str, str] | None:
+    """``{"wide": uri, "narrow": uri}`` of one chart function (called with ``*args`` and ``narrow``), or
+    None when there is nothing to draw."""
+    wide = chart(*args, narrow=False)
+    return None if wide is None else {"wide": wide, "narrow": chart(*args, narrow=True)}
+
+
+def _legend(ax, narrow: bool) -> None:
+    """Inside the plot on a wide chart; above it, one entry a line, on a narrow one."""
+    if narrow:
+        ax.legend(frameon=False, loc="lower left", bbox_to_anchor=(0, 1.0), ncols=1)
+    else:
+        ax.legend(frameon=False, loc="upper left")
 
 
 def _style(ax) -> None:
@@ -65,20 +89,21 @@ def _short_dates(dates: Sequence[str]) -> list[str]:
     return [d[5:] for d in dates]  # MM-DD keeps the axis readable
 
 
-def _night_axis(ax, trend: pd.DataFrame, ylabel: str) -> None:
-    """A trend chart's finish: one position per night, about eight dates shown, the legend above."""
+def _night_axis(ax, trend: pd.DataFrame, ylabel: str, narrow: bool) -> None:
+    """A trend chart's finish: one position per night, about eight dates shown (four on a narrow
+    chart), the legend above."""
     x = np.arange(len(trend))
-    step = max(1, len(x) // 8)
+    step = max(1, len(x) // (4 if narrow else 8))
     ax.set_xticks(x[::step], _short_dates(trend["run_date"].tolist())[::step])
     ax.set_ylabel(ylabel)
     ax.set_xlim(-0.6, len(x) - 0.4)
     _style(ax)
-    ax.legend(frameon=False, loc="lower left", bbox_to_anchor=(0, 1.0), ncols=3)
+    ax.legend(frameon=False, loc="lower left", bbox_to_anchor=(0, 1.0), ncols=1 if narrow else 3)
 
 
 @_charting
-def chart_rating_histograms(detail: Mapping) -> str | None:
-    """Organic (tonight) vs probe (window) rating shares per level."""
+def chart_rating_histograms(detail: Mapping, unit: str, narrow: bool = False) -> str | None:
+    """Organic (tonight) vs probe (window) rating shares per level; ``unit``: the rating unit's name."""
     org = np.asarray(detail.get("hist_tonight_organic") or [], dtype=float)
     probe = np.asarray(detail.get("hist_window_probe") or [], dtype=float)
     edges = np.asarray(detail.get("rating_edges") or [], dtype=float)
@@ -86,22 +111,22 @@ def chart_rating_histograms(detail: Mapping) -> str | None:
         return None
     centres = (edges[:-1] + edges[1:]) / 2
     width = np.diff(edges).min() * 0.38
-    fig = _figure()
+    fig = _figure("narrow" if narrow else "small")
     ax = fig.add_subplot()
     for shift, h, key, label in ((-width / 2, org, "organic", "organic ratings, tonight"),
                                  (width / 2, probe, "probe", "probe ratings, whole window")):
         share = h / h.sum() if h.sum() else h
         ax.bar(centres + shift, share, width=width, color=COLOURS[key], label=label)
     ax.set_xticks(centres, [f"{c:g}" for c in centres])
-    ax.set_xlabel("rating (stars)")
+    ax.set_xlabel(f"rating ({unit})")
     ax.set_ylabel("share of ratings")
     _style(ax)
-    ax.legend(frameon=False, loc="upper left")
+    _legend(ax, narrow)
     return _svg_data_uri(fig)
 
 
 @_charting
-def chart_skew_trend(trend: pd.DataFrame) -> str | None:
+def chart_skew_trend(trend: pd.DataFrame, unit: str, narrow: bool = False) -> str | None:
     """Mean shift per night with its trailing band and the nights that raised a skew alert."""
     if trend.empty or trend["skew_mean_shift"].isna().all():
         return None
@@ -109,7 +134,7 @@ def chart_skew_trend(trend: pd.DataFrame) -> str | None:
     y = trend["skew_mean_shift"].astype(float).to_numpy()
     lo = trend["band_lo"].astype(float).to_numpy()
     hi = trend["band_hi"].astype(float).to_numpy()
-    fig = _figure(10.0, 3.3)
+    fig = _figure("narrow" if narrow else "trend")
     ax = fig.add_subplot()
     ax.fill_between(x, lo, hi, color=COLOURS["band"], step="mid", label="usual range (trailing band)",
                     where=~np.isnan(lo))
@@ -119,12 +144,12 @@ def chart_skew_trend(trend: pd.DataFrame) -> str | None:
         ax.scatter(x[hit], y[hit], s=70, marker="D", facecolors="none", edgecolors=COLOURS["alert"],
                    linewidths=1.6, label="skew alert", zorder=3)
     ax.axhline(0, color=COLOURS["grid"], linewidth=0.8)
-    _night_axis(ax, trend, "organic − probe mean (stars)")
+    _night_axis(ax, trend, f"organic − probe mean ({unit})", narrow)
     return _svg_data_uri(fig)
 
 
 @_charting
-def chart_prediction_shift(detail: Mapping) -> str | None:
+def chart_prediction_shift(detail: Mapping, unit: str, narrow: bool = False) -> str | None:
     """Predicted-rating shares per bin: candidate vs live."""
     cand = detail.get("pred_hist_candidate")
     live = detail.get("pred_hist_live")
@@ -133,26 +158,26 @@ def chart_prediction_shift(detail: Mapping) -> str | None:
         return None
     centres = (edges[:-1] + edges[1:]) / 2
     width = np.diff(edges).min() * (0.4 if live else 0.8)
-    fig = _figure()
+    fig = _figure("narrow" if narrow else "small")
     ax = fig.add_subplot()
     series = [("candidate", np.asarray(cand, float))] + ([("live", np.asarray(live, float))] if live else [])
     for j, (key, h) in enumerate(series):
         offset = (j - (len(series) - 1) / 2) * width
         ax.bar(centres + offset, h / h.sum() if h.sum() else h, width=width, color=COLOURS[key], label=key)
-    ax.set_xlabel("predicted rating (stars)")
+    ax.set_xlabel(f"predicted rating ({unit})")
     ax.set_ylabel("share of sampled pairs")
     _style(ax)
-    ax.legend(frameon=False, loc="upper left")
+    _legend(ax, narrow)
     return _svg_data_uri(fig)
 
 
 @_charting
-def chart_mae_trend(trend: pd.DataFrame) -> str | None:
+def chart_mae_trend(trend: pd.DataFrame, unit: str, narrow: bool = False) -> str | None:
     """Held-out probe MAE per night for candidate, shadow and live, with confidence intervals."""
     if trend.empty or all(trend[f"{m}_mae"].isna().all() for m in MODELS):
         return None
     x = np.arange(len(trend))
-    fig = _figure(10.0, 3.3)
+    fig = _figure("narrow" if narrow else "trend")
     ax = fig.add_subplot()
     for m in MODELS:
         y = trend[f"{m}_mae"].astype(float).to_numpy()
@@ -162,6 +187,6 @@ def chart_mae_trend(trend: pd.DataFrame) -> str | None:
         hi = trend[f"{m}_mae_hi"].astype(float).to_numpy()
         ax.fill_between(x, lo, hi, color=COLOURS[m], alpha=0.14, linewidth=0)
         ax.plot(x, y, color=COLOURS[m], marker="o", markersize=3, linewidth=1.4, label=m)
-    _night_axis(ax, trend, "held-out probe MAE (stars)")
+    _night_axis(ax, trend, f"held-out probe MAE ({unit})", narrow)
     return _svg_data_uri(fig)
 

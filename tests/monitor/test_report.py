@@ -174,3 +174,52 @@ def test_report_renders_in_headless_chromium(stored_nights, cfg, tmp_path):
                     tmp_path / "profile-shot")
     assert res.returncode == 0 and shot.exists()
     assert shot.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n" and shot.stat().st_size > 50_000
+
+
+def _page(ws, cfg, date=DATES[-1], **detail_changes) -> str:
+    """The page for a stored night, optionally with parts of its detail replaced."""
+    from tasks.monitor.report import build_report, render_html
+    series = read_metrics(ws)
+    report = build_report(date, cfg, row_of(series, date, ws.metrics), series, read_history(ws))
+    report["detail"].update(detail_changes)
+    return render_html(report)
+
+
+def test_words_come_from_labels_not_from_the_demo(stored_nights, cfg):
+    plain = _page(stored_nights, cfg)
+    text = re.sub(r"<[^>]+>", " ", plain.split("<body>")[1])                # what a reader sees
+    for demo_word in (r"\bmembers?\b(?!-)", r"\btitles?\b", "\u2605", r"\bstars\b"):  # ids of the data aside
+        assert not re.search(demo_word, text), demo_word
+    assert "Skew per user" in plain and "active users" in plain and "new items" in plain
+    assert "mean shift (rating points)" in plain
+    from tasks.config import LabelsConfig
+    words = LabelsConfig(user="member", users="members", item="title", items="titles", rating_unit="stars",
+                         rating_symbol="\u2605")
+    demo = _page(stored_nights, cfg.model_copy(update={"labels": words}))
+    assert "Skew per member" in demo and "new titles" in demo and "mean shift (stars)" in demo
+    assert '<span class="unit">\u2605</span>' in demo
+
+
+def test_alert_cards_say_what_to_check_where_to_look_and_when_it_clears(stored_nights, cfg):
+    page = _page(stored_nights, cfg)
+    card = page[page.index('<div class="alert critical">'):page.index('<section id="skew">')]
+    for part in ("<dt>Check</dt>", "<dt>See more</dt>", "<dt>Clears</dt>", "the day&#39;s sources", "campaign",
+                 "probe card", f"<code>tarewise report --date {DATES[-1]}</code>"):
+        assert part in card, part
+    # the card of a record written before alerts carried advice gets it from its kind
+    assert card.count("<dt>Check</dt>") == 2      # the skew alert and the hand-written coverage alert
+
+
+def test_tables_of_missing_values_are_left_out_and_tiny_p_values_say_so(stored_nights, cfg):
+    row = row_of(read_metrics(stored_nights), DATES[-1], stored_nights.metrics)
+    assert row["skew_pvalue"] < 1e-4
+    page = _page(stored_nights, cfg)
+    assert "&lt; 1e-4" in page and "0.0000" not in page
+    assert "p-value, chi-square test" in page and "chi-square test of homogeneity" in page
+    assert "reference share" in page                    # the fixture's method drew reference users
+    # the default method (per_user) draws none: every share is missing, and the table goes
+    per_user = _page(stored_nights, cfg, reference_shares=[None] * 5)
+    assert "reference share" not in per_user and "Probe errors</h2>" in per_user
+    # the segment column no model has a number for ("unknown": users without probe ratings) goes too
+    segs = per_user[per_user.index("By skew segment (MAE)"):per_user.index("<h3>Trend</h3>", per_user.index("By skew"))]
+    assert ">up</th>" in segs and ">unknown</th>" not in segs and "\u2014" not in segs
