@@ -19,7 +19,7 @@ from tasks.evaluate.gate import decide
 from tasks.evaluate.segments import user_skew_segments
 from tasks.ingest.logs import IngestResult
 from tasks.lock import workspace_lock
-from tasks.monitor.night_report import report_night
+from tasks.monitor.night_report import measure_night, monitor_night
 from tasks.operate.retention import apply_retention_logged
 from tasks.operate.shared_copy import SharedCopyError
 from tasks.publish import versions
@@ -105,8 +105,12 @@ def _work(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool,
         with night.stage("evaluate"):
             segments = user_skew_segments(window, cfg.evaluate.skew_margin)
             night.evaluation = steps.evaluate(cfg, cand.probe_heldout, segments, cand.checkpoint, shadow, base)
-            night.gate = decide(night.evaluation, cfg.gate)
-            log.info("gate: %s (%s)", "promote" if night.gate.promote else "hold", night.gate.reason)
+        with night.stage("report"):   # tonight's metrics and alert rules come first: the gate may hold on an alert
+            version_id = versions.new_version_id(ws, run_date)
+            measured = measure_night(cfg, ws, run_date, window, ingested, trained, night.evaluation, base=base,
+                                     base_id=base_id, version_id=version_id)
+        night.gate = decide(night.evaluation, cfg.gate, measured.alerts_for_gate())
+        log.info("gate: %s (%s)", "promote" if night.gate.promote else "hold", night.gate.reason)
         with night.stage("predict"):
             preds = _predict(cfg, cand.checkpoint, window)
         with night.stage("publish"):
@@ -114,13 +118,11 @@ def _work(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool,
             manifest = build_manifest(cfg, run_date, kind, base_id, ingested.files,
                                       sorted(window["dt"].astype(str).unique().tolist()), night.counts,
                                       night.evaluation, night.gate, cand.rounds, cand.notes, cand.checkpoint.method)
-            version_id = versions.new_version_id(ws, run_date)
             state = steps.with_io_retries(steps.publish_version, cfg)(
                 cfg, version_id, cand.checkpoint, shadow, preds, manifest, make_live=night.gate.promote and make_live)
         with night.stage("report"):
-            monitored = report_night(cfg, ws, run_date, window, ingested, trained, night.evaluation, base=base,
-                                     base_id=base_id, version_id=version_id, state=state,
-                                     gate_reason=night.gate.reason, kind=kind, channels=prefect_channels(cfg))
+            monitored = monitor_night(ws, cfg, measured, kind, prefect_channels(cfg),
+                                      outcome={"state": state, "gate": night.gate.reason})
         night.alerts, night.epoch_seconds = monitored.alert_lines(), epoch_seconds(trained)
         _artifacts(night, monitored.markdown)
         night.done(version_id, state, message=night.gate.reason)

@@ -74,10 +74,11 @@ def _row_table(row: Mapping) -> pa.Table:
     return pa.Table.from_pylist([full], schema=NIGHTLY_METRICS)
 
 
-def write_night_metrics(ws: Workspace, row: Mapping) -> Path:
+def write_night_metrics(ws: Workspace, row: Mapping) -> pd.DataFrame:
     """Store one night's row (``compute_night_metrics`` output), replacing any row of that date.
 
-    Returns the metrics file path. Rows stay sorted by ``run_date``.
+    Returns the series as stored, the same frame :func:`read_metrics` would read back now. Rows stay
+    sorted by ``run_date``.
     """
     new = _row_table(row)
     path = ws.metrics
@@ -87,7 +88,17 @@ def write_night_metrics(ws: Workspace, row: Mapping) -> Path:
     buf = io.BytesIO()
     pq.write_table(table, buf)
     atomic_write_bytes(path, buf.getvalue())
-    return path
+    return _frame(table)
+
+
+def as_stored(row: Mapping) -> dict:
+    """``row`` as the store would give it back (schema types; every column present), without writing it:
+    what the alert rules judge before the night is stored. :class:`MetricsStoreError` as for writing."""
+    return _frame(_row_table(row)).iloc[0].to_dict()
+
+
+def _frame(table: pa.Table) -> pd.DataFrame:
+    return table.to_pandas().sort_values("run_date").reset_index(drop=True)
 
 
 def read_metrics(ws: Workspace, until: str | None = None) -> pd.DataFrame:
@@ -95,11 +106,10 @@ def read_metrics(ws: Workspace, until: str | None = None) -> pd.DataFrame:
 
     ``until``: keep rows with ``run_date <= until``. Empty frame with all columns when nothing is stored.
     """
-    table = _read_table(ws.metrics)
-    df = table.to_pandas()
+    df = _frame(_read_table(ws.metrics))
     if until is not None:
-        df = df[df["run_date"] <= until]
-    return df.sort_values("run_date").reset_index(drop=True)
+        df = df[df["run_date"] <= until].reset_index(drop=True)
+    return df
 
 
 def row_of(series: pd.DataFrame, run_date: str, path: Path) -> dict:

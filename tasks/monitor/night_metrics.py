@@ -278,3 +278,14 @@ def compute_night_metrics(
     unknown = set(row) - set(NIGHTLY_METRICS.names)
     assert not unknown, f"metric keys missing from schemas.NIGHTLY_METRICS: {sorted(unknown)}"
     return row
+
+
+def with_versions(row: Mapping, more: Mapping[str, str | None]) -> dict:
+    """``row`` with ``more`` added to its versions in ``detail_json`` (what is known only after the gate:
+    the candidate's ``state`` and the ``gate`` reason); the same row :func:`compute_night_metrics` gives
+    when handed them in ``versions``."""
+    detail = json.loads(row["detail_json"])
+    detail["versions"] = {**detail.get("versions", {}), **{str(k): (None if v is None else str(v))
+                                                          for k, v in more.items()}}
+    detail["versions"] = dict(sorted(detail["versions"].items()))
+    return {**row, "detail_json": json.dumps(jsonable(detail), sort_keys=True, allow_nan=False)}

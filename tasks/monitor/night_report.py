@@ -1,9 +1,12 @@
-"""The monitor stage of a night, in one pass: metrics -> metrics store -> alert rules -> delivery -> report.
+"""The monitor stage of a night: its metrics and alert rules before the gate, then store -> deliver -> report.
 
-Each module is visited once, in that order: ``night_metrics`` computes tonight's row from the night's
-results, ``metrics_store`` stores it and the series is read back once, ``alert_rules`` judge the stored
-row against the series, ``alert_delivery`` records and sends (never raising for a receiver's problem),
-and ``report`` renders what it is given. Receivers beyond the webhook come in as channels from the flow.
+Each module is visited once, in this order. Before the promotion gate decides (:func:`measure_night`):
+``night_metrics`` computes tonight's row from the night's results, the stored series is read once, and
+``alert_rules`` judge the row as it will be stored against it, so the gate can hold on tonight's alerts
+(``gate.hold_on_alert``). After publishing (:func:`monitor_night`): ``metrics_store`` stores the row
+with the candidate's state and the gate's reason, the alerts are folded into episodes and
+``alert_delivery`` records and sends them (never raising for a receiver's problem), and ``report``
+renders what it is given. Receivers beyond the webhook come in as channels from the flow.
 """
 
 from __future__ import annotations
@@ -21,11 +24,12 @@ from tasks.engine.checkpoint import Checkpoint
 from tasks.engine.profiles import soft_cdf, thresholds
 from tasks.evaluate.evaluation import Evaluation
 from tasks.ingest.logs import IngestResult, rejected_by_reason
+from tasks.monitor.alert_advice import with_advice
 from tasks.monitor.alert_delivery import Channels, deliver_night
 from tasks.monitor.alert_history import AlertHistory
-from tasks.monitor.alert_rules import evaluate_alerts, fold_alerts
-from tasks.monitor.metrics_store import read_metrics, row_of, write_night_metrics
-from tasks.monitor.night_metrics import compute_night_metrics
+from tasks.monitor.alert_rules import Alert, evaluate_alerts, fold_alerts
+from tasks.monitor.metrics_store import as_stored, read_metrics, row_of, write_night_metrics
+from tasks.monitor.night_metrics import compute_night_metrics, with_versions
 from tasks.monitor.report import summary_markdown, write_report
 from tasks.schemas import PROBE
 from tasks.train.training import TrainedNight
@@ -75,36 +79,63 @@ class MonitoredNight:
         return [f"{r.get('severity')}: {r.get('kind')} - {r.get('explanation', '')}" for r in self.alerts]
 
 
+@dataclass(frozen=True)
+class MeasuredNight:
+    """Tonight before the gate: the metrics ``row`` (not stored yet; without the candidate's state and
+    the gate's reason) and the raw ``alerts`` the rules raised on it (not folded into episodes, not
+    delivered), each with its advice."""
+
+    row: dict
+    alerts: list[Alert]
+
+    def alerts_for_gate(self) -> list[tuple[str, str]]:
+        """``(severity, kind)`` of each alert, in the order raised: plain data for the gate."""
+        return [(a.severity, a.kind) for a in self.alerts]
+
+
+def judge_row(ws: Workspace, cfg: Config, row: Mapping) -> MeasuredNight:
+    """The alert rules over a computed metrics ``row`` as it will be stored, against the stored series
+    (read once here)."""
+    return MeasuredNight(dict(row), with_advice(evaluate_alerts(as_stored(row), read_metrics(ws), cfg), cfg))
+
+
+def _fold_and_deliver(history: AlertHistory, run_date: str, alerts: list[Alert], cfg: Config, kind: str,
+                      channels: Channels, env: Mapping[str, str] | None) -> list[dict]:
+    folded = fold_alerts(alerts, history.records, run_date, cfg.drift.cooldown_nights)
+    return deliver_night(history, run_date, folded, cfg, channels, kind, env)
+
+
 def alert_night(cfg: Config, tonight: Mapping, series: pd.DataFrame, history: AlertHistory, kind: str,
                 channels: Channels, env: Mapping[str, str] | None = None) -> list[dict]:
     """Alert rules over tonight's stored row and the stored series, folded by cool-down against the
     history, then delivered (``kind``: the run's kind; ``env``: where the webhook URL is looked up,
     default ``os.environ``). Returns the final history records."""
-    run_date = str(tonight["run_date"])
-    raw = evaluate_alerts(tonight, series, cfg)
-    folded = fold_alerts(raw, history.records, run_date, cfg.drift.cooldown_nights)
-    return deliver_night(history, run_date, folded, cfg, channels, kind, env)
+    raw = with_advice(evaluate_alerts(tonight, series, cfg), cfg)
+    return _fold_and_deliver(history, str(tonight["run_date"]), raw, cfg, kind, channels, env)
 
 
-def monitor_night(ws: Workspace, cfg: Config, row: Mapping, kind: str, channels: Channels,
-                  env: Mapping[str, str] | None = None) -> MonitoredNight:
-    """The monitor stage in one pass over a computed metrics ``row`` (:func:`compute_night_metrics`):
-    metrics store (write the row, read the series once) -> alert rules -> delivery -> report. The rules
-    and the report see the row as stored, exactly what ``tarewise report --date`` re-renders from."""
+def monitor_night(ws: Workspace, cfg: Config, measured: MeasuredNight, kind: str, channels: Channels,
+                  env: Mapping[str, str] | None = None, outcome: Mapping[str, str | None] | None = None
+                  ) -> MonitoredNight:
+    """After the gate: store tonight's row (with ``outcome``, e.g. ``{"state": ..., "gate": ...}``, added
+    to its versions), fold the alerts :func:`judge_row` raised into episodes against the history and
+    deliver them, then write the report from the stored row and series: exactly what ``tarewise report
+    --date`` re-renders from storage."""
+    row = with_versions(measured.row, outcome) if outcome else measured.row
     run_date = str(row["run_date"])
-    write_night_metrics(ws, row)
-    series = read_metrics(ws)
+    series = write_night_metrics(ws, row)
     tonight = row_of(series, run_date, ws.metrics)
     history = AlertHistory.read(ws)
-    records = alert_night(cfg, tonight, series, history, kind, channels, env)
+    records = _fold_and_deliver(history, run_date, measured.alerts, cfg, kind, channels, env)
     html, _ = write_report(ws, run_date, cfg, tonight, series, history.records)
-    return MonitoredNight(alerts=records, report=html, markdown=summary_markdown(row, records))
+    return MonitoredNight(alerts=records, report=html, markdown=summary_markdown(row, records, cfg.labels))
 
 
-def report_night(cfg: Config, ws: Workspace, run_date: str, window: pd.DataFrame, ingested: IngestResult,
-                 trained: TrainedNight, evaluation: Evaluation, *, base: Checkpoint | None, base_id: str | None,
-                 version_id: str, state: str, gate_reason: str, kind: str, channels: Channels) -> MonitoredNight:
-    """After publishing: tonight's metrics row from the night's results, then :func:`monitor_night`."""
+def measure_night(cfg: Config, ws: Workspace, run_date: str, window: pd.DataFrame, ingested: IngestResult,
+                  trained: TrainedNight, evaluation: Evaluation, *, base: Checkpoint | None, base_id: str | None,
+                  version_id: str) -> MeasuredNight:
+    """Before the gate: tonight's metrics row from the night's results (``version_id``: the id the
+    candidate will be published under), judged by the alert rules (:func:`judge_row`)."""
     cand = trained.candidate
     tonight = window[window["dt"].astype(str) == run_date]
     volumes = {"rows_read": ingested.rows_read, "rows_ingested": ingested.rows_valid,
@@ -117,6 +148,5 @@ def report_night(cfg: Config, ws: Workspace, run_date: str, window: pd.DataFrame
     row = compute_night_metrics(
         run_date, window, cfg.scale, cfg.evaluate.skew_margin, probe_errors=cand.probe_errors,
         reference_shares=[r["reference_share"] for r in cand.rounds], evaluation=evaluation,
-        volumes=volumes, versions={"candidate": version_id, "live": base_id, "state": state, "gate": gate_reason},
-        **sample)
-    return monitor_night(ws, cfg, row, kind, channels)
+        volumes=volumes, versions={"candidate": version_id, "live": base_id}, **sample)
+    return judge_row(ws, cfg, row)
