@@ -33,9 +33,10 @@ def small_window(seed: int = 5, user_ids: list[str] | None = None) -> pd.DataFra
 
 
 def publish_night(ws: Workspace, run_date: str, live: bool = True, seed: int = 5,
-                  user_ids: list[str] | None = None) -> str:
+                  user_ids: list[str] | None = None, gate: dict | None = None) -> str:
     """Train, publish and (``live``) switch to a version for ``run_date``, warm-started from the version
-    the pipeline would choose (``versions.base_for_date``). Returns the version id."""
+    the pipeline would choose (``versions.base_for_date``). ``gate``: the manifest's gate decision
+    (default: promoted when ``live``). Returns the version id."""
     window = small_window(seed, user_ids)
     base_id = versions.base_for_date(ws, run_date)
     base = versions.load_checkpoint(ws, base_id) if base_id else None
@@ -45,7 +46,7 @@ def publish_night(ws: Workspace, run_date: str, live: bool = True, seed: int = 5
     preds = build_predictions(ckpt, window, CFG.publish.top_n, CFG.debias.memory_budget_mb)
     vid = versions.new_version_id(ws, run_date)
     manifest = {"run_date": run_date, "kind": "nightly", "base_version": base_id, "method": ckpt.method,
-                "metrics": {}, "gate": {"promote": live, "reason": "test version"}}
+                "metrics": {}, "gate": gate or {"promote": live, "reason": "test version"}}
     versions.publish(ws, vid, ckpt, preds, manifest, shadow=ckpt)
     if live:
         versions.set_live(ws, vid, reason=f"test night {run_date}")

@@ -1,10 +1,10 @@
 """``tarewise`` command line. The edge: parses flags, validates config once, calls flows and tasks.
 
 The commands live by concern: ``nights.py`` (run, demo, backfill and its sweep), ``read_only.py``
-(score, versions, report, status), ``operations.py`` (rollback, prune, share, restore, serve); what they
-share is in ``common.py``, the checks made before anything starts in ``preflight.py``, the printed tables
-in ``tables.py``, the backfill's progress bar in ``progress.py``. They are registered here, in the order
-``tarewise --help`` lists them.
+(score, versions, report, status), ``operations.py`` (rollback, approve, reject, prune, share, restore,
+serve); what they share is in ``common.py``, the checks made before anything starts in ``preflight.py``,
+the printed tables in ``tables.py``, the backfill's progress bar in ``progress.py``. They are registered
+here, in the order ``tarewise --help`` lists them.
 """
 
 from __future__ import annotations
@@ -78,7 +78,8 @@ def _main(show_version: bool = typer.Option(False, "--version", help="Print the 
 
 for _name, _fn in (("run", nights.run), ("score", read_only.score), ("versions", read_only.versions_cmd),
                    ("report", read_only.report), ("demo", nights.demo), ("backfill", nights.backfill),
-                   ("status", read_only.status), ("rollback", operations.rollback), ("prune", operations.prune),
+                   ("status", read_only.status), ("rollback", operations.rollback), ("approve", operations.approve),
+                   ("reject", operations.reject), ("prune", operations.prune),
                    ("share", operations.share), ("restore", operations.restore), ("serve", operations.serve)):
     app.command(_name, cls=_Command)(_fn)
 

@@ -1,5 +1,6 @@
-"""Commands that operate the workspace and its deployment: ``rollback``, ``prune``, ``share`` and
-``restore`` (the shared copy), ``serve`` (schedules on a Prefect server).
+"""Commands that operate the workspace and its deployment: ``rollback``, ``approve`` and ``reject`` (a
+person's review, ``gate.require_approval``), ``prune``, ``share`` and ``restore`` (the shared copy),
+``serve`` (schedules on a Prefect server).
 
 Every change to the workspace holds the workspace lock; after ``rollback`` and ``prune`` the shared copy,
 if one is set, follows. Exit codes: 0 done; 1 refused (lock held, version unknown) or the copy failed;
@@ -15,7 +16,7 @@ from typing import Optional
 import typer
 
 from flows.cli.common import ConfigOpt, LogsOpt, SharedOpt, VerboseOpt, WorkspaceOpt, console, err, load, prefect_env
-from flows.cli.preflight import check_date, check_logs, existing_workspace, writable_workspace
+from flows.cli.preflight import check_date, check_logs, existing_workspace, user_error, writable_workspace
 
 
 def rollback(to: str = typer.Option(..., "--to", help="Version id to make live again (see `tarewise versions`)."),
@@ -43,6 +44,60 @@ def rollback(to: str = typer.Option(..., "--to", help="Version id to make live a
         err.print(f"note: {to} was held by the promotion gate when it was published (see `tarewise versions`)")
     console.print(f"live: {out['previous'] or 'none'} -> {out['live']} (ledger run {out['run_id']})", highlight=False)
     _share_after(cfg, f"rollback to {to} is done here")
+
+
+def _reviewer(by: Optional[str]) -> str:
+    if by:
+        return by
+    import getpass
+    try:
+        return getpass.getuser()
+    except Exception:  # noqa: BLE001 - no login name in this environment
+        return "unknown"
+
+
+def approve(version: str = typer.Argument(..., help="Version id awaiting approval (`tarewise status` lists them)."),
+            reason: str = typer.Option("approved", "--reason", help="Recorded in the ledger and the live pointer."),
+            by: Optional[str] = typer.Option(None, "--by", help="Who approves (default: your login name)."),
+            config: Optional[Path] = ConfigOpt, workspace: Optional[str] = WorkspaceOpt,
+            shared: Optional[str] = SharedOpt) -> None:
+    """Approve a candidate the gate held awaiting approval (gate.require_approval): it becomes live (one
+    atomic switch), recorded in the run ledger; then the shared copy, if one is set, follows."""
+    cfg = load(config, None, workspace, shared)
+    ws = existing_workspace(cfg, config, workspace)
+    from tasks.lock import LockHeld
+    from tasks.operate.approval import ApprovalError, approve as do_approve
+    from tasks.operate.rollback import RollbackError
+    try:
+        out = do_approve(ws, version, reason, _reviewer(by), cfg.runtime.timezone, cfg.runtime.lock_stale_seconds)
+    except ApprovalError as exc:
+        user_error(str(exc))
+    except (RollbackError, LockHeld) as exc:
+        err.print(f"[bold red]approve refused[/]: {exc}", highlight=False, soft_wrap=True)
+        raise typer.Exit(1)
+    console.print(f"approved: live {out['previous'] or 'none'} -> {out['live']} (ledger run {out['run_id']})",
+                  highlight=False)
+    _share_after(cfg, f"approval of {version} is done here")
+
+
+def reject(version: str = typer.Argument(..., help="Version id awaiting approval (`tarewise status` lists them)."),
+           reason: str = typer.Option(..., "--reason", help="Why: recorded in the run ledger."),
+           by: Optional[str] = typer.Option(None, "--by", help="Who rejects (default: your login name)."),
+           config: Optional[Path] = ConfigOpt, workspace: Optional[str] = WorkspaceOpt) -> None:
+    """Turn down a candidate awaiting approval: it stays held and no longer awaits; recorded in the run
+    ledger. The live version does not change."""
+    cfg = load(config, None, workspace)
+    ws = existing_workspace(cfg, config, workspace)
+    from tasks.lock import LockHeld
+    from tasks.operate.approval import ApprovalError, reject as do_reject
+    try:
+        run_id = do_reject(ws, version, reason, _reviewer(by), cfg.runtime.timezone, cfg.runtime.lock_stale_seconds)
+    except ApprovalError as exc:
+        user_error(str(exc))
+    except LockHeld as exc:
+        err.print(f"[bold red]reject refused[/]: {exc}", highlight=False, soft_wrap=True)
+        raise typer.Exit(1)
+    console.print(f"rejected: {version} stays held (ledger run {run_id})", highlight=False)
 
 
 def prune(as_of: Optional[str] = typer.Option(None, "--as-of", help="Reference date for the day-based limits "

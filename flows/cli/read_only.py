@@ -43,10 +43,12 @@ def versions_cmd(config: Optional[Path] = ConfigOpt, workspace: Optional[str] = 
         read_pointer(ws)
     except PointerDamaged as exc:
         err.print(f"[bold red]live version unknown[/]: {exc}", highlight=False, soft_wrap=True)
-    t, reasons = versions_table(list_versions(ws), f"versions in {ws.root}")
+    from tasks.operate.approval import awaiting, reviews
+    t, reasons = versions_table(list_versions(ws), f"versions in {ws.root}", reviews(ws),
+                                {m["version_id"] for m in awaiting(ws)})
     console.print(t)
     for line in reasons:
-        console.print(line, highlight=False, soft_wrap=True)
+        console.print(line, highlight=False, soft_wrap=True, markup=False)
 
 
 def report(date: Optional[str] = typer.Option(None, "--date", "-d", help="Night to render (default: latest)."),
@@ -113,6 +115,12 @@ def status(runs: int = typer.Option(10, "--runs", help="How many ledger rows to 
         console.print(f"runs: could not be read ({s['skipped']['runs']})", highlight=False)
     else:
         console.print(runs_table(s["runs"]))
+    for a in s["awaiting"]:
+        mae = f", held-out MAE {a['mae']:.4f}" if a.get("mae") is not None else ""
+        base = f" vs {a['compared_to']} {a['baseline_mae']:.4f}" if a.get("baseline_mae") is not None else ""
+        console.print(f"[bold yellow]awaiting approval[/]: {a['version_id']} (night {a['run_date']}{mae}{base})\n"
+                      f"  approve: tarewise approve {a['version_id']}   reject: tarewise reject {a['version_id']} "
+                      "--reason ...", highlight=False, soft_wrap=True)
     if "alerts" in s["skipped"]:
         console.print(f"alerts: could not be read ({s['skipped']['alerts']})", highlight=False)
     elif not s["alerts"]:

@@ -32,9 +32,13 @@ def print_night(out: dict) -> None:
         console.print(f"[bold magenta]alert[/] {a}", highlight=False)
 
 
-def versions_table(manifests: list[dict], title: str) -> tuple[Table, list[str]]:
+def versions_table(manifests: list[dict], title: str, reviews: dict | None = None,
+                   awaiting: set[str] = frozenset()) -> tuple[Table, list[str]]:
     """(one row per version manifest: state, run date, method, held-out MAE of each model, gate decision;
-    one ``"<version>: <gate reason>"`` line per version, printed under the table because reasons are long)."""
+    one ``"<version>: <gate reason>"`` line per version, printed under the table because reasons are long).
+    ``reviews``: a person's approval or rejection per version (``approval.reviews``), added to its line;
+    ``awaiting``: versions awaiting approval, shown with that state."""
+    reviews = reviews or {}
     t = Table(title=title)
     for col in ("version", "state", "run date", "method", "MAE cand.", "MAE shadow", "MAE live", "gate"):
         t.add_column(col, no_wrap=True)
@@ -43,10 +47,13 @@ def versions_table(manifests: list[dict], title: str) -> tuple[Table, list[str]]
         mt = m.get("metrics", {})
         f = lambda k: f"{mt[k]['mae']:.4f}" if mt.get(k) else "-"  # noqa: E731
         gate = m.get("gate", {})
-        t.add_row(m["version_id"], m["state"], m.get("run_date", ""), m.get("method", ""), f("candidate"),
+        t.add_row(m["version_id"], "awaiting approval" if m["version_id"] in awaiting else m["state"],
+                  m.get("run_date", ""), m.get("method", ""), f("candidate"),
                   f("shadow"), f("live"), f"{'promote' if gate.get('promote') else 'hold'} vs "
                   f"{gate.get('compared_to', '?')}")
-        reasons.append(f"{m['version_id']}: {m.get('damage') or gate.get('reason', '')}")
+        review = reviews.get(m["version_id"])
+        reasons.append(f"{m['version_id']}: {m.get('damage') or gate.get('reason', '')}"
+                       + (f" [{review['kind']}: {review['message']}]" if review else ""))
     return t, reasons
 
 

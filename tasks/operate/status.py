@@ -16,6 +16,7 @@ from tasks.dates import shift
 from tasks.lock import is_stale, read_lock
 from tasks.monitor.alert_history import latest_by_night, read_history
 from tasks.operate import doctor
+from tasks.operate.approval import awaiting
 from tasks.operate.retention import default_as_of
 from tasks.publish import versions
 from tasks.workspace import Workspace
@@ -74,6 +75,19 @@ def recent_alerts(ws: Workspace, as_of: str, days: int) -> list[dict]:
     return sorted(latest, key=lambda r: (str(r.get("run_date")), str(r.get("recorded_at", ""))))
 
 
+def awaiting_summary(ws: Workspace) -> list[dict]:
+    """Versions awaiting approval, newest first: id, run date, held-out MAE of the candidate and of what
+    the gate compared it with, and the gate's reason."""
+    out = []
+    for m in awaiting(ws):
+        metrics, gate = m.get("metrics") or {}, m.get("gate") or {}
+        other = metrics.get(gate.get("compared_to", "")) or {}
+        out.append({"version_id": m["version_id"], "run_date": m.get("run_date"),
+                    "mae": (metrics.get("candidate") or {}).get("mae"), "compared_to": gate.get("compared_to"),
+                    "baseline_mae": other.get("mae"), "reason": gate.get("reason", "")})
+    return out
+
+
 def _or(name: str, section: Callable[[], object], fallback: object, skipped: dict[str, str]) -> object:
     """A section's value, or ``fallback`` when it cannot be read; then ``skipped[name]`` says why (the
     doctor names the damaged file and its fix)."""
@@ -89,8 +103,8 @@ def status(ws: Workspace, timezone: str, stale_seconds: float, runs: int = 10, d
     """Everything ``tarewise status`` shows. ``as_of`` (for "the last week") is the newest completed run
     date, so a workspace replaying old history shows that history's alerts. ``live`` is the string
     ``"unknown"`` when the pointer or the live manifest cannot be read. ``skipped``: section -> why it
-    could not be read. ``findings``: the doctor's (:func:`tasks.operate.doctor.diagnose`, with
-    ``extra_checks``)."""
+    could not be read. ``awaiting``: versions awaiting a person's approval (``approval.awaiting``),
+    newest first. ``findings``: the doctor's (:func:`tasks.operate.doctor.diagnose`, with ``extra_checks``)."""
     holder = read_lock(ws.lock)
     lock = None
     if holder is not None or ws.lock.exists():
@@ -101,4 +115,5 @@ def status(ws: Workspace, timezone: str, stale_seconds: float, runs: int = 10, d
     return {"workspace": str(ws.root), "live": _or("live", lambda: live_summary(ws), "unknown", skipped),
             "lock": lock, "runs": _or("runs", lambda: recent_runs(ws, runs, stale_seconds), [], skipped),
             "as_of": as_of, "days": days, "alerts": _or("alerts", lambda: recent_alerts(ws, as_of, days), [], skipped),
+            "awaiting": _or("awaiting", lambda: awaiting_summary(ws), [], skipped),
             "skipped": skipped, "findings": doctor.diagnose(ws, stale_seconds, extra_checks)}

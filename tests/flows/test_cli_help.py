@@ -12,8 +12,8 @@ from typer.testing import CliRunner
 
 from flows.cli import app
 
-COMMANDS = ["run", "score", "versions", "report", "demo", "backfill", "status", "rollback", "prune", "share",
-            "restore", "serve"]
+COMMANDS = ["run", "score", "versions", "report", "demo", "backfill", "status", "rollback", "approve", "reject",
+            "prune", "share", "restore", "serve"]
 
 
 def _help(*args: str) -> str:

@@ -81,6 +81,10 @@ CASES = [
     ("prune date that does not exist", ["prune", "--as-of", "2026-02-30"], ["--as-of", "not a calendar date"], []),
     ("demo with no nights", ["demo", "--nights", "0"], ["--nights"], []),
     ("misspelt option", ["run", "--dtae", "2026-11-01"], ["--dtae", "--date"], []),
+    ("approve a version that is not there", ["approve", "v20261105-1"],
+     ["cannot approve v20261105-1", "is not a published version", "awaiting approval: none"], []),
+    ("reject a version that is not there", ["reject", "v20261105-1", "--reason", "x"],
+     ["cannot reject v20261105-1", "awaiting approval: none"], []),
 ]
 
 # Commands that only read, pointed at nothing: they say what they tried and create nothing.
