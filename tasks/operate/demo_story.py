@@ -17,9 +17,11 @@ dates:
   ``input.max_rejected_share`` (5%, which would stop the night).
 - **a campaign** (:data:`CAMPAIGN`): the app ran "tell us your favourite title" cards, so members who
   rate what they love were far more active and rated almost only their favourites. The organic ratings
-  of those nights sit much further above the probe ratings than on the nights before: a skew-shift
-  alert. Probe cards kept running, so the held-out probe ratings still judge every candidate; whether
-  a campaign night's candidate is promoted is the gate's decision, not part of the data.
+  of those nights sit much further above the probe ratings than on the nights before: a critical
+  skew-shift alert. Probe cards kept running, so the held-out probe ratings still judge every
+  candidate and would promote the campaign nights' ones; ``configs/demo.toml`` sets
+  ``gate.hold_on_alert = "critical"``, so the gate holds them for their alert and the version of the
+  night before the campaign stays live. That is the demo's configuration, not part of the data.
 
 :func:`summary` reads a workspace after the nights ran and lists what a reader should look at: held
 versions with their reason and manifest, quarantined rows with their reasons and file, alerts with the

@@ -1,7 +1,9 @@
 """The demo tells its story (tasks/operate/demo_story.py, `tarewise demo`): over the committed invented
-nights a candidate is held with its reason, a bad batch goes to the quarantine and alerts fire, and the
+nights candidates are held with their reasons (the trial night for want of probe ratings, the campaign's
+nights for their critical skew alert), a bad batch goes to the quarantine and alerts fire, and the
 closing summary names each with the file that shows it. A second run says the nights are done; `run`
-prints where its version and report are. Real Prefect flows (the session's test API), real files."""
+prints where its version and report are; with gate.require_approval a night waits for `approve`. Real
+Prefect flows (the session's test API), real files."""
 
 from __future__ import annotations
 
@@ -37,11 +39,17 @@ def demo_run(prefect_harness, tmp_path_factory):
 def test_summary_names_the_held_candidate_the_quarantined_batch_and_the_alerts(demo_run) -> None:
     root, ws, out = demo_run
     held = [m for m in list_versions(ws) if m["state"] == "held"]
-    assert [m["run_date"] for m in held] == [demo_story.TRIAL_DATE]
-    manifest = ws.versions / held[0]["version_id"] / "manifest.json"
-    reason = json.loads(manifest.read_text())["gate"]["reason"]
-    assert "held-out probe ratings" in reason and "gate.min_heldout" in reason
-    assert f"version {held[0]['version_id']} held: {reason}" in out and str(manifest) in out
+    assert [m["run_date"] for m in held] == [demo_story.TRIAL_DATE, *demo_story.CAMPAIGN]
+    reasons = []
+    for m in held:
+        manifest = ws.versions / m["version_id"] / "manifest.json"
+        reasons.append(json.loads(manifest.read_text())["gate"]["reason"])
+        assert f"version {m['version_id']} held: {reasons[-1]}" in out and str(manifest) in out
+    assert "held-out probe ratings" in reasons[0] and "gate.min_heldout" in reasons[0]
+    # configs/demo.toml holds on critical alerts: the campaign's nights, which the probe alone would promote
+    for reason in reasons[1:]:
+        assert reason.startswith("tonight's critical skew_shift alert holds it (gate.hold_on_alert = \"critical\")")
+        assert "on the held-out probe ratings alone it would be promoted" in reason
 
     quarantine = ws.quarantine / f"dt={demo_story.BAD_BATCH_DATE}" / "part-0.parquet"
     rejected = pq.read_table(quarantine).to_pandas()
@@ -117,3 +125,26 @@ def test_by_default_the_demo_uses_the_workspace_demo_toml_names(prefect_harness,
     assert (tmp_path / named / "ledger" / "runs.parquet").exists()
     assert not (tmp_path / "a-real-workspace").exists()
     assert f"{Path(named).parts[0]}/" in (REPO / ".gitignore").read_text().splitlines()
+
+
+def test_with_require_approval_a_night_waits_until_approved(demo_run, tmp_path) -> None:
+    """gate.require_approval end to end: the nightly flow holds the passing candidate awaiting approval,
+    status lists it, `approve` makes it live."""
+    root, ws, _ = demo_run
+    copy = tmp_path / "ws"
+    shutil.copytree(ws.root, copy)
+    config = tmp_path / "approval.toml"
+    text = (REPO / "configs" / "demo.toml").read_text(encoding="utf-8")
+    config.write_text(text.replace('hold_on_alert = "critical"', 'hold_on_alert = "critical"\nrequire_approval = true'),
+                      encoding="utf-8")
+    result = _cli("run", "--date", "2026-11-12", "-c", str(config), "--logs", str(REPO / "sample_parquet"),
+                  "--workspace", str(copy))
+    assert result.exit_code == 0, result.output[-2000:]
+    gate = json.loads((copy / "versions" / "v20261112-2" / "manifest.json").read_text())["gate"]
+    assert gate["awaiting_approval"] is True and gate["reason"].startswith("awaiting approval (gate.require_approval): ")
+    assert json.loads((copy / "live.json").read_text())["version_id"] == "v20261112-1"
+    status = _cli("status", "-c", str(config), "--workspace", str(copy))
+    assert "awaiting approval: v20261112-2 (night 2026-11-12" in " ".join(status.output.split())
+    approved = _cli("approve", "v20261112-2", "--by", "ana", "-c", str(config), "--workspace", str(copy))
+    assert approved.exit_code == 0, approved.output
+    assert json.loads((copy / "live.json").read_text())["version_id"] == "v20261112-2"
