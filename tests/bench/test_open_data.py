@@ -70,7 +70,8 @@ def test_published_group_follows_the_alpha_scheme(bfi) -> None:
     rate = {r: (org["rating"] == r).sum() / (pool == r).sum() for r in (2.0, 3.0, 4.0, 5.0, 6.0)}
     assert rate[5.0] == pytest.approx(rate[6.0], rel=0.08)
     for r in (4.0, 3.0):
-        # Bernoulli counts of a few hundred to thousands: 20% relative tolerance is > 3 standard errors.
+        # Bernoulli counts of a few hundred to thousands: 20% relative tolerance is > 3 standard errors
+        # (normal approximation; 3 standard errors: common practice, no source).
         assert rate[r] / rate[r + 1] == pytest.approx(0.25, rel=0.2)
 
 

@@ -45,7 +45,8 @@ def test_reference_draw_frequencies_match_probabilities() -> None:
         counts[np.searchsorted(p.index.to_numpy(), draw_reference_users(p, rng))] += 1
     freq = pd.Series(counts / draws, index=p.index)
     se = np.sqrt(p * (1 - p) / draws)
-    # Bernoulli(p_u) draws: frequency within 4 binomial standard errors (normal approximation).
+    # Bernoulli(p_u) draws: frequency within 4 binomial standard errors (normal approximation; 4: common
+    # practice, no source).
     assert (np.abs(freq - p) <= 4 * se).all(), pd.DataFrame({"freq": freq, "p": p})
 
 

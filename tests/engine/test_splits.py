@@ -16,7 +16,8 @@ def test_heldout_split_is_a_function_of_the_pair() -> None:
     order = rng.permutation(len(users))
     assert np.array_equal(heldout_mask(users[order], items[order], 0.3), held[order])   # row order irrelevant
     assert np.array_equal(heldout_mask(list(users[:50]), list(items[:50]), 0.3), held[:50])  # any sequence
-    # Share close to configured: within 4 binomial standard errors (normal approximation).
+    # Share close to configured: within 4 binomial standard errors (normal approximation; 4: common
+    # practice, no source).
     assert abs(held.mean() - 0.3) <= 4 * np.sqrt(0.3 * 0.7 / len(held))
     with pytest.raises(ValueError, match="share"):
         heldout_mask(users, items, 1.0)

@@ -79,7 +79,7 @@ def test_group_shares_near_target(world) -> None:
     _, truth, _ = world
     share = truth.groups.value_counts(normalize=True)
     for group, target in {"lover": 0.60, "hater": 0.15, "random": 0.25}.items():
-        sd = math.sqrt(target * (1 - target) / truth.n_members)
+        sd = math.sqrt(target * (1 - target) / truth.n_members)   # binomial; 4 sd: common practice, no source
         assert abs(share[group] - target) < 4 * sd, (group, share[group])
 
 
@@ -105,7 +105,7 @@ def test_probe_share_near_target(world) -> None:
         active = day.loc[day["source"] == schemas.ORGANIC, "user_id"].nunique()
         probes = day[day["source"] == schemas.PROBE]
         assert probes["user_id"].is_unique                  # one probe card per member per night
-        sd = math.sqrt(active * 0.4 * 0.6)                  # binomial spread of the probe count
+        sd = math.sqrt(active * 0.4 * 0.6)      # binomial spread of the probe count; 4 sd: common practice, no source
         assert abs(len(probes) - 0.4 * active) < 4 * sd, (len(probes), active)
 
 
@@ -114,6 +114,7 @@ def test_default_probe_share_is_three_percent(tmp_path: Path) -> None:
     df = load(tmp_path)
     active = sum(d.loc[d["source"] == schemas.ORGANIC, "user_id"].nunique() for _, d in df.groupby("dt"))
     probes = int((df["source"] == schemas.PROBE).sum())
+    # binomial spread, normal approximation; 4 sd: common practice, no source
     assert abs(probes - 0.03 * active) < 4 * math.sqrt(active * 0.03 * 0.97)
 
 
@@ -170,5 +171,6 @@ def test_popularity_sampler_matches_stored_popularity() -> None:
     p = truth.title_popularity
     assert abs(p.sum() - 1.0) < 1e-12
     top = by_rank[:20]           # the most popular titles: a clearly long-tailed head
+    # binomial spread per title, normal approximation; 5 sd over 20 titles: common practice, no source
     assert np.all(np.abs(counts[top] - n * p[top]) < 5 * np.sqrt(n * p[top] * (1 - p[top])))
     assert p[by_rank[0]] > 20 * p[by_rank[-1]]
