@@ -1,4 +1,4 @@
-// Measures a rendered report page in the browser (tests/monitor/test_report_layout.py injects this into
+// Measures a rendered report page in the browser (tests/monitor/test_report.py injects this into
 // a copy of the page shown in a frame; the report itself carries no scripts). Posts one JSON object to the
 // page around the frame:
 //   innerWidth, scrollWidth  - the page must not be wider than the window (no sideways scroll);

@@ -1,5 +1,11 @@
 """The nightly HTML report and its JSON twin: built from stored metrics and alert history only,
-escaped, self-contained, deterministic, and (when Chromium is installed) rendered by a real browser.
+escaped, self-contained, deterministic, and (when Chromium is installed) rendered by a real browser,
+on a phone (390 px wide) and a desktop (1280 px): no sideways scroll of the page, nothing cut off (a wide
+table scrolls in its own box), no number broken across lines, chart text at least 9 px. ``.ci/run``
+installs Chromium best-effort; without it those tests are skipped.
+
+The page has no scripts and its Content-Security-Policy allows none; the layout tests measure a copy of
+it with ``report_layout.js`` added and scripts allowed, so the layout measured is the page's own.
 
 Invented scenario data: library-app members rating titles 1-5 stars; every number is invented.
 """
@@ -17,6 +23,7 @@ import pandas as pd
 import pytest
 
 from handmade import model_errors
+from tasks.config import LabelsConfig
 from tasks.evaluate.evaluation import Evaluation
 from tasks.monitor.alert_delivery import Channels
 from tasks.monitor.alert_history import AlertHistory, append_history, night_alerts, read_history
@@ -24,6 +31,7 @@ from tasks.monitor.metrics_store import MetricsStoreError, read_metrics, row_of,
 from tasks.monitor.night_metrics import compute_night_metrics
 from tasks.monitor.night_report import alert_night
 from tasks.monitor.report import render_report, summary_markdown, summary_table
+from tasks.monitor.report_charts import FONT_PT
 
 EVIL_MEMBER = 'member-<script>alert("boo")</script>\'q'
 EVIL_VERSION = 'v-"><script>alert(1)</script>'
@@ -192,7 +200,6 @@ def test_words_come_from_labels_not_from_the_demo(stored_nights, cfg):
         assert not re.search(demo_word, text), demo_word
     assert "Skew per user" in plain and "active users" in plain and "new items" in plain
     assert "mean shift (rating points)" in plain
-    from tasks.config import LabelsConfig
     words = LabelsConfig(user="member", users="members", item="title", items="titles", rating_unit="stars",
                          rating_symbol="\u2605")
     demo = _page(stored_nights, cfg.model_copy(update={"labels": words}))
@@ -223,3 +230,56 @@ def test_tables_of_missing_values_are_left_out_and_tiny_p_values_say_so(stored_n
     # the segment column no model has a number for ("unknown": users without probe ratings) goes too
     segs = per_user[per_user.index("By skew segment (MAE)"):per_user.index("<h3>Trend</h3>", per_user.index("By skew"))]
     assert ">up</th>" in segs and ">unknown</th>" not in segs and "\u2014" not in segs
+
+
+#: Smallest chart text we accept, in CSS px: about the page's figure captions (12.5 px) times 0.7.
+MIN_CHART_TEXT_PX = 9.0
+SCRIPT = Path(__file__).with_name("report_layout.js")
+
+
+def _measure(html_path: Path, width: int, tmp: Path) -> dict:
+    """Load a measuring copy of the page in a frame ``width`` CSS px wide (headless Chromium keeps its own
+    window at least 500 px wide, a frame can be any width) and return what ``report_layout.js`` found."""
+    page = html_path.read_text(encoding="utf-8")
+    page, n = re.subn(r"default-src 'none';", "default-src 'none'; script-src 'unsafe-inline';", page)
+    assert n == 1
+    script = SCRIPT.read_text(encoding="utf-8").replace("FONT_PT", str(FONT_PT))
+    copy = tmp / f"measured-{width}.html"
+    copy.write_text(page.replace("</body>", f"<script>{script}</script>\n</body>"), encoding="utf-8")
+    frame = tmp / f"frame-{width}.html"
+    frame.write_text(f"""<!DOCTYPE html><html><body style="margin:0"><pre id="layout"></pre>
+<iframe src="{copy.name}" style="width:{width}px;height:20000px;border:0;display:block"></iframe>
+<script>addEventListener("message", (e) => {{ document.getElementById("layout").textContent = e.data; }});</script>
+</body></html>""", encoding="utf-8")
+    res = _chromium(["--hide-scrollbars", f"--window-size={width + 100},2000", "--virtual-time-budget=10000",
+                     "--dump-dom", frame.as_uri()], tmp / f"profile-{width}")
+    assert res.returncode == 0, res.stderr[-2000:]
+    found = re.search(r'<pre id="layout">(.+?)</pre>', res.stdout, re.S)
+    assert found, res.stdout[-2000:]
+    return json.loads(found.group(1).replace("&lt;", "<").replace("&gt;", ">").replace("&amp;", "&"))
+
+
+@pytest.mark.skipif(CHROMIUM is None, reason="Chromium is not installed")
+@pytest.mark.parametrize("width", [390, 1280])
+def test_report_fits_the_screen_without_sideways_scroll_or_broken_numbers(stored_nights, cfg, tmp_path, width):
+    html_path, _ = render_report(stored_nights, DATES[-1], cfg)
+    got = _measure(html_path, width, tmp_path)
+    assert got["innerWidth"] == width
+    assert got["scrollWidth"] <= width, got["stickingOut"][:10]
+    assert got["stickingOut"] == []
+    assert got["wrapped"] == []
+    assert len(got["charts"]) == 4
+    for chart in got["charts"]:
+        assert chart["narrow"] is (width < 600), chart          # the phone gets the phone-sized drawing
+        assert chart["textPx"] >= MIN_CHART_TEXT_PX, chart
+    if width == 390:
+        assert got["scrollingTables"] >= 1     # the wide tables scroll in their own box (the check above has power)
+
+
+@pytest.mark.skipif(CHROMIUM is None, reason="Chromium is not installed")
+def test_the_demos_words_fit_a_phone_too(stored_nights, cfg, tmp_path):
+    words = LabelsConfig(user="member", users="members", item="title", items="titles", rating_unit="stars",
+                         rating_symbol="\u2605")
+    html_path, _ = render_report(stored_nights, DATES[-1], cfg.model_copy(update={"labels": words}))
+    got = _measure(html_path, 390, tmp_path)
+    assert (got["scrollWidth"], got["stickingOut"], got["wrapped"]) == (390, [], [])
