@@ -28,6 +28,9 @@ def print_night(out: dict) -> None:
     console.print(t)
     console.print(f"gate: {'promote' if out['gate']['promote'] else 'hold'} - {out['gate']['reason']}",
                   highlight=False)
+    if out["gate"].get("awaiting_approval"):
+        console.print(f"to approve: tarewise approve {out['version_id']}; to turn it down: tarewise reject "
+                      f"{out['version_id']} --reason ...", highlight=False, markup=False)
     for a in out.get("alerts", []):
         console.print(f"[bold magenta]alert[/] {a}", highlight=False)
 

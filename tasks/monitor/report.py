@@ -9,6 +9,11 @@ The page carries no scripts, fonts, stylesheets or images from elsewhere: CSS is
 matplotlib SVGs embedded as ``data:`` URIs (``report_charts``), text uses the reader's system fonts, and
 every value that comes from data (ids, reasons, explanations) goes through jinja2's autoescape. Output
 is deterministic for the same stored inputs (no timestamps, fixed SVG id salt, no SVG metadata).
+
+It reads on a phone as on a desktop: a table wider than the screen scrolls in its own box, numbers
+never wrap, and each chart is drawn at two widths (the phone's below 600 px). The words for people,
+things and the rating unit come from ``[labels]`` (``cfg.labels``); each alert card shows the alert's
+advice (``alert_advice``): what to check, which command shows more, when it clears.
 """
 
 from __future__ import annotations

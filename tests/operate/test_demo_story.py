@@ -142,6 +142,7 @@ def test_with_require_approval_a_night_waits_until_approved(demo_run, tmp_path) 
     assert result.exit_code == 0, result.output[-2000:]
     gate = json.loads((copy / "versions" / "v20261112-2" / "manifest.json").read_text())["gate"]
     assert gate["awaiting_approval"] is True and gate["reason"].startswith("awaiting approval (gate.require_approval): ")
+    assert "to approve: tarewise approve v20261112-2" in " ".join(result.output.split())
     assert json.loads((copy / "live.json").read_text())["version_id"] == "v20261112-1"
     status = _cli("status", "-c", str(config), "--workspace", str(copy))
     assert "awaiting approval: v20261112-2 (night 2026-11-12" in " ".join(status.output.split())
