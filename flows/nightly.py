@@ -105,6 +105,9 @@ def _work(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool,
         with night.stage("evaluate"):
             segments = user_skew_segments(window, cfg.evaluate.skew_margin)
             night.evaluation = steps.evaluate(cfg, cand.probe_heldout, segments, cand.checkpoint, shadow, base)
+        with night.stage("anchor"):   # the strongest recent version on the same held-out ratings (gate rule 3)
+            night.evaluation = steps.compare_with_anchor(cfg, run_date, night.evaluation, cand.probe_heldout,
+                                                         cand.checkpoint, base_id, base)
         with night.stage("report"):   # tonight's metrics and alert rules come first: the gate may hold on an alert
             version_id = versions.new_version_id(ws, run_date)
             measured = measure_night(cfg, ws, run_date, window, ingested, trained, night.evaluation, base=base,

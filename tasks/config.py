@@ -212,6 +212,17 @@ class GateConfig(_Section):
     tolerance_mae: float = Field(0.01, ge=0.0, description="Candidate may be at most this much worse than live.")
     max_segment_regression: float = Field(0.05, ge=0.0, description="No segment's MAE may rise by more than this.")
     min_heldout: int = Field(10, ge=0, description="Fewer held-out probe ratings than this: the gate holds.")
+    anchor_nights: int = Field(14, ge=0, description="The anchor is the strongest of this many most recent "
+                               "versions that were live (or promoted by the gate), re-scored on tonight's "
+                               "held-out probe ratings. 0: no anchor (the candidate is compared with live only).")
+    anchor_budget: float = Field(0.01, ge=0.0, description="Cumulative budget: the candidate is held when its "
+                                 "held-out MAE is worse than the anchor's, on the same ratings, by more than "
+                                 "this, even if it is within gate.tolerance_mae of live. Small steps down add "
+                                 "up against it.")
+    segments_vs_shadow: Literal["hold", "note"] = Field(
+        "hold", description="Every night each segment of the candidate is also compared with the plain shadow "
+        "model (gate.max_segment_regression, gate.min_heldout): 'hold' holds a candidate with a segment worse "
+        "than doing nothing; 'note' promotes it and names the segment in the gate's reason.")
     hold_on_alert: Literal["off", "warning", "critical"] = Field(
         "off", description="Hold a candidate whose night raised an alert of this severity or worse ('warning' "
         "holds on warnings and critical alerts). 'off': alerts never hold; the held-out probe ratings judge "
