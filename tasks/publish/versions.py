@@ -325,8 +325,9 @@ def _newest_first(manifests: list[dict]) -> list[dict]:
 
 def prune(ws: Workspace, keep: int, pinned: tuple[str, ...] = ()) -> list[str]:
     """Delete all but the ``keep`` most recently published versions; never the live one, a pinned one,
-    or the live version's base (needed to re-run the live version's date identically). Returns the
-    deleted ids, oldest first.
+    the live version's base (needed to re-run the live version's date identically), or the anchor the
+    most recently published version was judged against (``metrics.anchor``: a run of held nights must
+    not delete the anchor that holds them). Returns the deleted ids, oldest first.
 
     "Most recently published", not "latest run date": a re-run or backfill of old dates publishes
     versions that are new work, and the next night of a backfill warm-starts from the one just
@@ -343,6 +344,11 @@ def prune(ws: Workspace, keep: int, pinned: tuple[str, ...] = ()) -> list[str]:
         base = read_manifest(ws, live).get("base_version")
         if base:
             protect.add(base)
+    readable = [m for m in manifests if m.get("state") != "damaged"]
+    if readable:   # the anchor the newest night was judged against: the next night needs it too
+        anchor = ((_newest_first(readable)[0].get("metrics") or {}).get("anchor") or {}).get("version_id")
+        if anchor:
+            protect.add(anchor)
     newest = {m["version_id"] for m in _newest_first(manifests)[:keep]}
     deleted = []
     for m in manifests:

@@ -159,3 +159,20 @@ def test_an_anchor_version_whose_files_are_gone_is_skipped_with_the_path(tmp_pat
     priors, skipped = versions.anchor_versions(ws, "2026-11-03", 14)
     assert [p.version_id for p in priors] == [v2]
     assert len(skipped) == 1 and skipped[0].startswith(f"{v1}: ") and "model.pt is missing" in skipped[0]
+
+
+def test_retention_keeps_the_anchor_the_newest_night_was_judged_against(tmp_path) -> None:
+    ws = Workspace.at(tmp_path / "ws")
+    v1 = publish_night(ws, "2026-11-01")
+    v2 = publish_night(ws, "2026-11-02", seed=6)
+    v3 = publish_night(ws, "2026-11-03", seed=7)              # live; its base v2 is kept anyway
+    v4 = publish_night(ws, "2026-11-04", live=False, seed=8, gate={"promote": False, "reason": "anchor"})
+    path = ws.versions / v4 / "manifest.json"
+    manifest = json.loads(path.read_text())
+    manifest["metrics"] = {"anchor": {"version_id": v1, "margin": 0.02}}
+    path.write_text(json.dumps(manifest))
+    assert versions.prune(ws, keep=1) == []                   # v1: the anchor that held v4
+    assert {v1, v2, v3, v4} <= {p.name for p in ws.versions.iterdir()}
+    manifest["metrics"] = {}
+    path.write_text(json.dumps(manifest))
+    assert versions.prune(ws, keep=1) == [v1]
