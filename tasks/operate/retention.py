@@ -3,7 +3,8 @@
 Three things age out (``[retention]`` in the config):
 
 - versions: all but the ``keep_versions`` most recently published are deleted; the live version, its
-  base (needed to re-run the live version's date identically) and ``pinned`` ones never are
+  base (needed to re-run the live version's date identically), the gate's anchor of the newest night
+  and ``pinned`` ones never are
   (``versions.prune``);
 - quarantine partitions (``quarantine/dt=D``) with ``D`` more than ``quarantine_days`` before ``as_of``;
 - metric rows with a run date more than ``metrics_days`` before ``as_of``.

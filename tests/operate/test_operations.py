@@ -109,9 +109,13 @@ def test_retention_never_removes_live_or_pinned_versions(ops):
     _cli("rollback", "--to", ids[0], *args)          # live is now the oldest version
     keep_one = RetentionConfig(keep_versions=1, pinned=(ids[1],))
     assert apply_retention(ws, keep_one, "2026-11-03").versions == []   # newest + live + pinned: all kept
+    # Unpinned, ids[1] is still kept: the newest night (ids[2]) was judged against it as the gate's
+    # anchor, and the next night needs it (versions.prune); a version neither live, pinned, newest, the
+    # live version's base nor that anchor goes (test_retention_keeps_the_live_versions_base).
+    assert versions.read_manifest(ws, ids[2])["metrics"]["anchor"]["version_id"] == ids[1]
     result = apply_retention(ws, RetentionConfig(keep_versions=1), "2026-11-03")
-    assert result.versions == [ids[1]]
-    assert sorted(p.name for p in ws.versions.iterdir()) == [ids[0], ids[2]]
+    assert result.versions == []
+    assert sorted(p.name for p in ws.versions.iterdir()) == ids
     assert versions.live_version(ws) == ids[0] and versions.load_checkpoint(ws, ids[0]) is not None
 
 
