@@ -11,6 +11,8 @@ import pyarrow.parquet as pq
 import pytest
 
 from tasks.ingest.store import read_window
+from conftest import REPO
+from tasks import ledger
 from tasks.ledger import read_ledger
 from tasks.publish import versions
 from tasks.workspace import Workspace
@@ -80,7 +82,13 @@ def test_rerun_same_date_gives_identical_predictions_and_no_duplicate_rows(prefe
     nightly(cfg=demo_cfg, run_date=DATES[0])
     first = nightly(cfg=demo_cfg, run_date=DATES[1])
     rows_before = len(read_window(ws, DATES[1], demo_cfg.window.days))
-    second = nightly(cfg=demo_cfg, run_date=DATES[1])
+    live_before, ledger_rows = versions.live_version(ws), len(ledger.read_ledger(ws))
+    # Triggered again with the same inputs: nothing runs, one line says so, no ledger row, live unchanged.
+    again = nightly(cfg=demo_cfg, run_date=DATES[1])
+    assert again["status"] == "unchanged" and again["version_id"] == first["version_id"]
+    assert "already done with the same inputs" in again["message"] and "--force" in again["message"]
+    assert len(ledger.read_ledger(ws)) == ledger_rows and versions.live_version(ws) == live_before
+    second = nightly(cfg=demo_cfg, run_date=DATES[1], force=True)
     assert first["version_id"] != second["version_id"]
     a = pq.read_table(ws.versions / first["version_id"] / "predictions.parquet").to_pandas()
     b = pq.read_table(ws.versions / second["version_id"] / "predictions.parquet").to_pandas()
@@ -88,6 +96,22 @@ def test_rerun_same_date_gives_identical_predictions_and_no_duplicate_rows(prefe
     assert len(read_window(ws, DATES[1], demo_cfg.window.days)) == rows_before
     stored = pq.read_table(ws.store).to_pandas()
     assert not stored.duplicated(["user_id", "item_id", "source", "event_time"]).any()
+
+
+def test_changed_inputs_rerun_a_done_night(prefect_harness, demo_cfg, tmp_path):
+    """The same date triggered again after its input file changed (a corrected upload) runs again."""
+    from flows.nightly import nightly
+
+    logs = tmp_path / "logs"
+    _copy_logs(REPO / "sample_parquet", logs, DATES[:1])
+    cfg = demo_cfg.with_overrides(logs=str(logs))
+    first = nightly(cfg=cfg, run_date=DATES[0])
+    part = next((logs / f"dt={DATES[0]}").glob("*.parquet"))
+    df = pd.read_parquet(part)
+    df.iloc[: len(df) - 1].to_parquet(part, index=False)     # one row fewer
+    second = nightly(cfg=cfg, run_date=DATES[0])
+    assert second["status"] == "done" and second["version_id"] != first["version_id"]
+    assert second["counts"]["rows_read"] == first["counts"]["rows_read"] - 1
 
 
 def _copy_logs(src, dst, dates):
