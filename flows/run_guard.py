@@ -27,7 +27,7 @@ from contextlib import contextmanager
 from tasks import ledger
 from tasks.config import Config
 from tasks.ledger import RunRecord
-from tasks.lock import LockWaitExpired, workspace_lock
+from tasks.lock import LockHeld, workspace_lock
 from tasks.workspace import Workspace
 
 _watched: list[RunRecord] = []
@@ -103,7 +103,7 @@ def locked_run(cfg: Config, ws: Workspace, what: str, kind: str, run_date: str) 
                 log.warning("took over a stale workspace lock left by %s", held["took_over"].get("what"))
             settle_dead_runs(ws, log)
             yield held
-    except LockWaitExpired as exc:
+    except LockHeld as exc:   # LockWaitExpired after a wait; LockHeld at once with lock_wait_seconds = 0
         ledger.record_refusal(ws, kind, run_date, f"{what}: {exc}", flow_run_id=flow_run_id())
         raise
 

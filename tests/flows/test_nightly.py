@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 import shutil
+import time
 
 import numpy as np
 import pandas as pd
@@ -160,10 +161,42 @@ def test_too_many_rejected_rows_fails_before_training_and_quarantines(prefect_ha
 
 def test_run_refused_while_another_holds_the_lock(prefect_harness, demo_cfg):
     from flows.nightly import nightly
-    from tasks.lock import LockHeld, workspace_lock
+    from tasks.lock import LockWaitExpired, workspace_lock
 
     ws = Workspace.at(demo_cfg.paths.workspace)
+    cfg = demo_cfg.updated({"runtime.lock_wait_seconds": 2})
+    t0 = time.monotonic()
     with workspace_lock(ws.lock, "a manual run", 3600):
-        with pytest.raises(LockHeld, match="locked by a manual run"):
-            nightly(cfg=demo_cfg, run_date=DATES[0])
+        with pytest.raises(LockWaitExpired, match="gave up after waiting 2 s .*locked by a manual run"):
+            nightly(cfg=cfg, run_date=DATES[0])
+    assert time.monotonic() - t0 >= 2            # it waited the stated time first
     assert versions.live_version(ws) is None
+    row = read_ledger(ws).iloc[-1]                # the refusal is in the ledger, not only in Prefect
+    assert (row["status"], row["run_date"], row["kind"]) == ("refused", DATES[0], "nightly")
+    assert "runtime.lock_wait_seconds" in row["message"] and row["flow_run_id"]
+
+
+def test_nightly_waits_for_a_backfill_holding_the_lock_then_runs(prefect_harness, demo_cfg):
+    """A nightly started while another run holds the lock waits for it instead of failing."""
+    import threading
+
+    from flows.nightly import nightly
+    from tasks.lock import workspace_lock
+
+    ws = Workspace.at(demo_cfg.paths.workspace)
+    cfg = demo_cfg.updated({"runtime.lock_wait_seconds": 120})
+    held, release = threading.Event(), threading.Event()
+
+    def holder():
+        with workspace_lock(ws.lock, "backfill 2026-10-01..2026-10-31", 3600):
+            held.set()
+            release.wait(60)
+
+    t = threading.Thread(target=holder)
+    t.start()
+    held.wait(10)
+    threading.Timer(3.0, release.set).start()
+    t0 = time.monotonic()
+    out = nightly(cfg=cfg, run_date=DATES[0])
+    t.join()
+    assert out["status"] == "done" and time.monotonic() - t0 >= 3
