@@ -158,3 +158,30 @@ def catch_up_on_start(cfg: Config) -> str | None:
                          timeout=0, flow_run_name=f"catch-up to {due[-1]}")
     return (f"{len(due)} night(s) owed since the last done one ({_dates(due)}): started run {run.name} "
             f"({run.id}) to catch up (runtime.catch_up = '{cfg.runtime.catch_up}')")
+
+
+def paused_deployments() -> list:
+    """``status``'s check of the two deployments on the Prefect server named by ``PREFECT_API_URL`` (none
+    set: nothing to check): a paused one is a problem (no scheduled run fires until it is resumed)."""
+    import os
+
+    from tasks.operate.doctor import NOTE, PROBLEM, Finding
+    if not os.environ.get("PREFECT_API_URL"):
+        return []
+    from prefect.client.orchestration import get_client
+    out = []
+    try:
+        with get_client(sync_client=True) as client:
+            for name in (f"{scheduled_nightly.name}/{NIGHTLY_DEPLOYMENT}", f"{scheduled_backfill.name}/{BACKFILL_DEPLOYMENT}"):
+                try:
+                    dep = client.read_deployment_by_name(name)
+                except Exception:  # noqa: BLE001 - not registered (yet) is not a fault
+                    continue
+                if dep.paused:
+                    out.append(Finding(PROBLEM, f"deployment {name} is paused (stopping `tarewise serve` pauses it): "
+                                                "no scheduled run fires",
+                                       "run `tarewise serve` again (or turn its schedule on in the Prefect UI)"))
+    except Exception as exc:  # noqa: BLE001 - status never crashes
+        out.append(Finding(NOTE, f"deployments not checked: the Prefect API at {os.environ['PREFECT_API_URL']} did "
+                                 f"not answer ({type(exc).__name__})", "start the server, or unset PREFECT_API_URL"))
+    return out

@@ -22,6 +22,7 @@ from zoneinfo import ZoneInfo
 from tasks import dates
 from tasks.config import Config
 from tasks.ledger import latest_by_date
+from tasks.operate.doctor import NOTE, Finding
 from tasks.workspace import Workspace
 
 SETTLED = ("done", "skipped")
@@ -101,3 +102,20 @@ def gaps(ws: Workspace, today: str) -> dict:
     holes = [d for d in dates.date_range(settled[0], settled[-1]) if d not in have]
     behind = max(dates.days_between(settled[-1], dates.shift(today, -1)), 0)
     return {"holes": holes, "behind": behind, "last": settled[-1]}
+
+
+def night_findings(ws: Workspace, today: str) -> list[Finding]:
+    """``status``'s lines about lost nights: dates not done between done ones, and a workspace more than a
+    night behind (notes: nothing fails, but someone may want to fill them)."""
+    g = gaps(ws, today)
+    out = []
+    if g["holes"]:
+        h = g["holes"]
+        shown = ", ".join(h) if len(h) <= 6 else f"{h[0]}..{h[-1]} ({len(h)} dates)"
+        out.append(Finding(NOTE, f"night(s) not done between done ones: {shown}",
+                           f"fill them: tarewise backfill --start {h[0]} --end {h[-1]}"))
+    if g["behind"] >= 2:
+        out.append(Finding(NOTE, f"no night done after {g['last']}: {g['behind']} night(s) behind yesterday",
+                           "if serve is running they are caught up by the next scheduled run (runtime.catch_up); "
+                           f"else: tarewise backfill --start {dates.shift(g['last'], 1)} --end {dates.shift(today, -1)}"))
+    return out

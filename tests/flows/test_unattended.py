@@ -158,3 +158,20 @@ def test_scheduled_run_catches_up_owed_nights_in_order_or_names_them_missed(pref
     cfg2 = cfg.updated({"runtime.catch_up": "all", "runtime.catch_up_per_run": 1})
     out = scheduled_nightly(settings=deployment_settings(cfg2), run_date=DATES[5])
     assert out["nights"] == [DATES[4]] and ledger.latest_by_date(ws).loc[DATES[4], "status"] == "done"
+
+
+def test_status_check_names_a_paused_deployment(prefect_harness, history, tmp_path, monkeypatch):
+    """Stopping serve pauses the deployments (Prefect's runner does on shutdown); status names that."""
+    from prefect.client.orchestration import get_client
+
+    from flows.deployments import build_deployments, paused_deployments
+
+    cfg = _cfg(history, tmp_path / "ws")
+    ids = [d.apply() for d in build_deployments(cfg)]
+    monkeypatch.setenv("PREFECT_API_URL", prefect_harness)
+    assert paused_deployments() == []
+    with get_client(sync_client=True) as client:
+        client.pause_deployment(ids[0])
+    [finding] = paused_deployments()
+    assert finding.severity == "problem" and "tarewise-scheduled-nightly/nightly is paused" in finding.what
+    assert "tarewise serve" in finding.fix
