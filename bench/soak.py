@@ -257,16 +257,21 @@ def report(ws, dates, kills, minutes, api, root, common, env, cli) -> int:
             type=FlowRunFilterStateType(any_=[StateType.RUNNING]))))
     if mismatch:
         problems.append(f"{len(mismatch)} ledger row(s) whose Prefect state does not match: {mismatch[:5]}")
-    status = subprocess.run([*cli, "status", "--config", common[1], "--workspace", common[5]], env=env, cwd=REPO,
+    # The workspace doctor alone (no PREFECT_API_URL: serve was stopped, so its deployments are paused,
+    # which status would rightly name; that is recorded separately below).
+    local = {k: v for k, v in env.items() if k != "PREFECT_API_URL"}
+    status = subprocess.run([*cli, "status", "--config", common[1], "--workspace", common[5]], env=local, cwd=REPO,
                             capture_output=True, text=True, timeout=300)
-    live_whole = status.returncode == 0 and "problem" not in status.stdout.lower()
+    live_whole = status.returncode == 0 and "problem:" not in status.stdout
     if not live_whole:
         problems.append("status reports a problem:\n" + status.stdout[-3000:] + status.stderr[-2000:])
+    paused = subprocess.run([*cli, "status", "--config", common[1], "--workspace", common[5]], env=env, cwd=REPO,
+                            capture_output=True, text=True, timeout=300).stdout.count("is paused")
     figures = {"nights_in_range": len(dates), "nights_done": int((done_counts > 0).sum()),
                "scheduled_nights_done": int(((nightly["status"] == "done") & (nightly["run_date"] != dates[0])).sum()),
                "kills": dict(kills), "ledger_outcomes": dict(Counter(df["status"])),
                "ledger_vs_prefect": dict(states), "prefect_runs_still_running": len(stuck),
-               "live_whole": live_whole, "minutes": round(minutes, 1), "problems": problems}
+               "live_whole": live_whole, "deployments_paused_after_stop": paused, "minutes": round(minutes, 1), "problems": problems}
     (root / "soak.json").write_text(json.dumps(figures, indent=2))
     print(json.dumps(figures, indent=2))
     return 1 if problems else 0

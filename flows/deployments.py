@@ -178,8 +178,9 @@ def paused_deployments() -> list:
                 except Exception:  # noqa: BLE001 - not registered (yet) is not a fault
                     continue
                 if dep.paused:
+                    what = "no scheduled night runs" if name.endswith(NIGHTLY_DEPLOYMENT) else "its runs wait"
                     out.append(Finding(PROBLEM, f"deployment {name} is paused (stopping `tarewise serve` pauses it): "
-                                                "no scheduled run fires",
+                                                f"{what}",
                                        "run `tarewise serve` again (or turn its schedule on in the Prefect UI)"))
     except Exception as exc:  # noqa: BLE001 - status never crashes
         out.append(Finding(NOTE, f"deployments not checked: the Prefect API at {os.environ['PREFECT_API_URL']} did "

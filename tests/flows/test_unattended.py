@@ -106,10 +106,12 @@ def _cli(args, env_extra, api_url):
 
 
 def test_sigterm_is_recorded_as_a_stop_naming_signal_and_stage(prefect_harness, history, tmp_path):
-    ws = Workspace.at(tmp_path / "ws")
+    from flows.nightly import nightly
+
+    cfg = _cfg(history, tmp_path / "ws")
+    ws = Workspace.at(cfg.paths.workspace)
     common = ["--config", str(history / "fast.toml"), "--logs", str(history / "logs"), "--workspace", str(ws.root)]
-    done = _cli(["run", "--date", DATES[0], *common], {}, prefect_harness)
-    assert done.returncode == 0, done.stderr[-2000:]
+    nightly(cfg=cfg, run_date=DATES[0])
     stopped = _cli(["run", "--date", DATES[1], *common], {"TAREWISE_FAILPOINT": "publish:staged=SIGTERM"},
                    prefect_harness)
     assert stopped.returncode != 0
