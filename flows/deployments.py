@@ -17,6 +17,8 @@ holder died is taken over. Each night has the flow timeout ``runtime.flow_timeou
 
 from __future__ import annotations
 
+import os
+import signal
 from datetime import datetime
 from pathlib import Path
 from typing import Literal
@@ -84,6 +86,11 @@ def scheduled_nightly(settings: dict, run_date: str | None = None) -> dict:
         except Exception as exc:  # noqa: BLE001 - one failed night must not stop the later ones
             log.error("night %s failed: %s: %s", d, type(exc).__name__, exc)
             failed.append(f"{d}: {type(exc).__name__}: {exc}")
+        stop = run_guard.stop_requested()
+        if stop and d != plan.run[-1]:   # held back while night d finished its bookkeeping: stop here now
+            log.warning("%s received during night %s: the %d later night(s) wait for the next run", stop, d,
+                        len(plan.run) - plan.run.index(d) - 1)
+            os.kill(os.getpid(), getattr(signal, stop))
     if failed:
         raise ScheduledRunFailed(f"{len(failed)} of {len(plan.run)} night(s) failed: " + "; ".join(failed))
     return {**nights[-1], "nights": [n["run_date"] for n in nights], "missed": plan.missed}
@@ -163,8 +170,6 @@ def catch_up_on_start(cfg: Config) -> str | None:
 def paused_deployments() -> list:
     """``status``'s check of the two deployments on the Prefect server named by ``PREFECT_API_URL`` (none
     set: nothing to check): a paused one is a problem (no scheduled run fires until it is resumed)."""
-    import os
-
     from tasks.operate.doctor import NOTE, PROBLEM, Finding
     if not os.environ.get("PREFECT_API_URL"):
         return []
