@@ -11,7 +11,7 @@ from prefect.artifacts import create_markdown_artifact, create_table_artifact
 from flows import run_guard, runners
 from flows.alert_channels import prefect_channels
 from flows.night_record import NightRecord, epoch_seconds, input_counts, training_counts
-from tasks import ledger, steps
+from tasks import failpoints, ledger, steps
 from tasks.config import Config
 from tasks.dates import parse_date, yesterday
 from tasks.engine.checkpoint import Checkpoint
@@ -145,6 +145,7 @@ def _work(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool,
             state = steps.with_io_retries(steps.publish_version, cfg)(
                 cfg, version_id, cand.checkpoint, shadow, preds, manifest, make_live=night.gate.promote and make_live)
         night.done(version_id, state, message=night.gate.reason)   # published: nothing below may fail the night
+        failpoints.hit("night:published")
         night.epoch_seconds = epoch_seconds(trained)
         with night.stage("report"):
             try:

@@ -123,6 +123,20 @@ def test_sigterm_is_recorded_as_a_stop_naming_signal_and_stage(prefect_harness, 
     assert versions.live_version(ws) == ledger.latest_by_date(ws).loc[DATES[0], "version_id"]
 
 
+def test_sigterm_after_publishing_leaves_the_night_done_in_ledger_and_prefect(prefect_harness, history, tmp_path):
+    """A stop request that arrives once the night is recorded done (e.g. serve stopped during the report)
+    is held back until the run ends: the ledger says done and Prefect says Completed, never Cancelled."""
+    ws = Workspace.at(tmp_path / "ws")
+    common = ["--config", str(history / "fast.toml"), "--logs", str(history / "logs"), "--workspace", str(ws.root)]
+    out = _cli(["run", "--date", DATES[0], *common], {"TAREWISE_FAILPOINT": "night:published=SIGTERM"},
+               prefect_harness)
+    assert out.returncode == 0, out.stderr[-2000:]
+    row = ledger.read_ledger(ws).iloc[-1]
+    assert row["status"] == "done" and versions.live_version(ws) == row["version_id"]
+    assert _prefect_state(row["flow_run_id"]) == "COMPLETED"
+    assert "SIGTERM received after night" in out.stderr + out.stdout
+
+
 def test_sigkilled_run_is_settled_by_the_next_one_in_ledger_and_prefect(prefect_harness, history, tmp_path):
     from flows.nightly import nightly
 
