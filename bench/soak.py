@@ -6,7 +6,8 @@ with the first day done (`tarewise run`); after that every scheduled run (one a 
 oldest owed nights, at most ``runtime.catch_up_per_run`` of them (``--per-run``), so the whole history
 is worked through by scheduled runs, in date order, while the chaos loop kills things.
 
-Afterwards it asserts: every date is done exactly once in the ledger; each ledger row's Prefect flow run
+Kills land while a night is at work (a ``running`` ledger row), at a random moment 0-8 s later, so they hit
+every stage rather than process start-up. Afterwards it asserts: every date is done exactly once in the ledger; each ledger row's Prefect flow run
 is in the matching state (done -> Completed, interrupted -> Crashed or Cancelled, failed/refused -> Failed
 or Crashed); live names a whole version (``tarewise status`` finds no problem). It prints the figures:
 nights, kills by kind, ledger outcomes, Prefect states, minutes.
@@ -104,13 +105,22 @@ def settled(ws) -> set[str]:
     return set() if latest.empty else {str(d) for d in latest.index[latest["status"].isin(["done", "skipped"])]}
 
 
+def running(ws) -> bool:
+    from tasks.ledger import read_ledger
+    try:
+        return bool((read_ledger(ws)["status"] == "running").any())
+    except Exception:  # noqa: BLE001 - a ledger being replaced right now: try again next loop
+        return False
+
+
 def main() -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--root", type=Path, default=Path("/tmp/tarewise-soak"))
     ap.add_argument("--days", type=int, default=62)
     ap.add_argument("--per-run", type=int, default=3)
     ap.add_argument("--minutes", type=float, default=80, help="Give up after this long.")
-    ap.add_argument("--chaos-every", type=float, nargs=2, default=(40, 110), help="Seconds between kills (range).")
+    ap.add_argument("--chaos-every", type=float, nargs=2, default=(60, 150), help="Seconds between kills (range); "
+                    "each kill waits for a night at work (a running ledger row), then 0-8 s more.")
     ap.add_argument("--seed", type=int, default=15)
     a = ap.parse_args()
     rng = random.Random(a.seed)
@@ -170,7 +180,8 @@ def main() -> int:
             if serve.poll() is not None:
                 log(f"serve exited ({serve.returncode}); restarting")
                 serve = start_serve()
-            if time.time() >= next_chaos:
+            if time.time() >= next_chaos and running(ws):   # kill while a night is at work, at a random moment
+                time.sleep(rng.uniform(0, 8))
                 next_chaos = time.time() + rng.uniform(*a.chaos_every)
                 runs = children(serve.pid)
                 action = rng.choices(["kill-run", "kill-serve", "term-serve"], [0.5, 0.3, 0.2])[0]
