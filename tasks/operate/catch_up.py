@@ -105,17 +105,12 @@ def gaps(ws: Workspace, today: str) -> dict:
 
 
 def night_findings(ws: Workspace, today: str) -> list[Finding]:
-    """``status``'s lines about lost nights: dates not done between done ones, and a workspace more than a
-    night behind (notes: nothing fails, but someone may want to fill them)."""
-    g = gaps(ws, today)
-    out = []
-    if g["holes"]:
-        h = g["holes"]
-        shown = ", ".join(h) if len(h) <= 6 else f"{h[0]}..{h[-1]} ({len(h)} dates)"
-        out.append(Finding(NOTE, f"night(s) not done between done ones: {shown}",
-                           f"fill them: tarewise backfill --start {h[0]} --end {h[-1]}"))
-    if g["behind"] >= 2:
-        out.append(Finding(NOTE, f"no night done after {g['last']}: {g['behind']} night(s) behind yesterday",
-                           "if serve is running they are caught up by the next scheduled run (runtime.catch_up); "
-                           f"else: tarewise backfill --start {dates.shift(g['last'], 1)} --end {dates.shift(today, -1)}"))
-    return out
+    """``status``'s line about lost nights: dates not done between done ones (a note: nothing fails, but
+    someone may want to fill them). How far the newest night is from today is not a finding: a workspace
+    that replays history, or runs without a schedule, is not behind anything."""
+    h = gaps(ws, today)["holes"]
+    if not h:
+        return []
+    shown = ", ".join(h) if len(h) <= 6 else f"{h[0]}..{h[-1]} ({len(h)} dates)"
+    return [Finding(NOTE, f"night(s) not done between done ones: {shown}",
+                    f"fill them: tarewise backfill --start {h[0]} --end {h[-1]}")]
