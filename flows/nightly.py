@@ -145,6 +145,7 @@ def _work(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool,
             state = steps.with_io_retries(steps.publish_version, cfg)(
                 cfg, version_id, cand.checkpoint, shadow, preds, manifest, make_live=night.gate.promote and make_live)
         night.done(version_id, state, message=night.gate.reason)   # published: nothing below may fail the night
+        ledger.save(ws, night)
         failpoints.hit("night:published")
         night.epoch_seconds = epoch_seconds(trained)
         with night.stage("report"):

@@ -260,6 +260,12 @@ def recorded(ws: Workspace, record: R) -> Iterator[R]:
     _finish(ws, record)
 
 
+def save(ws: Workspace, record: RunRecord) -> None:
+    """Write the record's row now, as it stands (e.g. ``done`` once a night is published, before its
+    report: a run killed afterwards stays done). :func:`recorded` still finishes it on exit."""
+    _finish(ws, record)
+
+
 def _finish(ws: Workspace, record: RunRecord) -> None:
     finish_run(ws, record.run_id, record.status, version_id=record.version_id, state=record.state,
                rows_ingested=record.counts.get("rows_ingested"),
