@@ -298,6 +298,16 @@ class RuntimeConfig(_Section):
     lock_stale_seconds: int = Field(4 * 3600, ge=60, description="A store lock older than this with a dead "
                                     "holder is taken over.")
     min_ratings_to_train: int = Field(1, ge=1, description="Skip training on a date with fewer ratings in the window.")
+    lock_wait_seconds: int = Field(1800, ge=0, description="A scheduled or flow-started run (nightly, backfill) "
+                                   "waits this long for another run to release the workspace lock, then gives up "
+                                   "with one line recorded in the ledger (status 'refused'). `tarewise run` and "
+                                   "`backfill` from a terminal are refused at once instead.")
+    catch_up: str = Field("all", description="Nights missed since the last done one (serve down, a dropped slot): "
+                          "'all' runs them before the scheduled night, oldest first; 'last:N' only the N most "
+                          "recent (the older ones are reported as missed in `status` and an alert); 'none' runs "
+                          "none (all are reported).")
+    catch_up_per_run: int = Field(0, ge=0, description="At most this many nights per scheduled run, oldest first "
+                                  "(the scheduled night waits until the backlog is done); 0 = no limit.")
     min_free_mb: int = Field(200, ge=0, description="Commands that write refuse to start when the workspace's disk "
                              "has less free space than this (MB); 0 = no check. A night writes a version (model, "
                              "predictions), store and report files; 200 MB covers the demo many times over "
@@ -312,6 +322,23 @@ class RuntimeConfig(_Section):
     @classmethod
     def _cron(cls, v: str) -> str:
         return check_cron(v)
+
+    @field_validator("catch_up")
+    @classmethod
+    def _catch_up(cls, v: str) -> str:
+        v = v.strip().lower()
+        if v in ("all", "none"):
+            return v
+        head, _, n = v.partition(":")
+        if head == "last" and n.isdigit() and int(n) >= 1:
+            return f"last:{int(n)}"
+        raise ValueError(f"{v!r} is not 'all', 'none' or 'last:N' (N >= 1)")
+
+    def catch_up_limit(self) -> int | None:
+        """How many missed nights to run: None = all, 0 = none, N for 'last:N'."""
+        if self.catch_up == "all":
+            return None
+        return 0 if self.catch_up == "none" else int(self.catch_up.split(":")[1])
 
 
 class DriftConfig(_Section):
