@@ -35,11 +35,16 @@ import math
 from dataclasses import asdict, dataclass, field
 
 import numpy as np
+import pandas as pd
 from scipy import stats
 
-from tasks.config import GateConfig
+
+from tasks.config import Config, GateConfig
+from tasks.engine.checkpoint import Checkpoint
 from tasks.evaluate.evaluation import Evaluation, ModelErrors
 from tasks.evaluate.gate import judge_errors
+from tasks.evaluate.probe_plan import own_pseudo_ratings, probe_splits
+from tasks.schemas import PROBE
 
 #: Nightly counts tried, as multiples of today's: resampled up to 1, modelled above.
 FRACTIONS = (0.1, 0.2, 0.35, 0.5, 0.75, 1.0, 1.5, 2.0, 3.0, 4.0)
@@ -254,3 +259,21 @@ def budget_table(budget: Budget) -> list[dict]:
              "closed form power": p.power_formula, "false hold": p.false_hold,
              f"detectable ({budget.power_target:.0%})": p.detectable,
              "own share": p.own_share, "modelled": p.modelled} for p in budget.points]
+
+
+def budget_from_window(window: pd.DataFrame, run_date: str, candidate: Checkpoint, baseline: Checkpoint | None,
+                       baseline_name: str, cfg: Config) -> Budget:
+    """The budget of night ``run_date`` from its window (rows with ``dt``, ``source``), the night's candidate
+    and the model it was judged against (``baseline_name``: "live" or "shadow"; None: no baseline). Raises
+    ``ValueError`` when the night has too few probe ratings for a budget."""
+    fitting, heldout = probe_splits(window, cfg.debias.heldout_share)
+    users, items = heldout["user_id"].astype(str).to_numpy(), heldout["item_id"].astype(str).to_numpy()
+    y = heldout["rating"].to_numpy(float)
+    err_c = np.abs(candidate.score(users, items)[0] - y)
+    err_b = np.abs(baseline.score(users, items)[0] - y) if baseline is not None else None
+    tonight = (window["dt"].astype(str) == run_date) & (window["source"] == PROBE)
+    own = fitting["user_id"].astype(str).value_counts().to_numpy()
+    return probe_budget(err_c, err_b, int(tonight.sum()), own, int(window["user_id"].nunique()),
+                        own_pseudo_ratings(candidate), cfg.gate, confidence=cfg.evaluate.confidence,
+                        regression=cfg.probe.budget_regression, power_target=cfg.probe.budget_power,
+                        seed=cfg.model.seed, paired_with=baseline_name if baseline is not None else "unpaired")
