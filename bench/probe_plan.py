@@ -21,13 +21,14 @@ Per seed:
    fine-tune is too slow for 3 seeds x 30 nights x 8 runs on 2 cores); the probe only moves the
    correction here, which is also all the plan is meant to improve.
 
-Printed: MAR MAE after the last night (mean +- std over seeds) per policy and budget; the uniform budget
-that matches the planned MAE (linear interpolation between uniform budgets, per seed); each policy's share
-of probes per selection group (does the plan concentrate on a group?).
+Printed: MAR MAE, mean of the last 10 nights (mean +- std over seeds), per policy and budget; the uniform
+budget that matches a plan's MAE (per seed, from a line of the uniform MAEs against log budget); each
+policy's share of probes per selection group (does the plan concentrate on a group?).
 
 Usage::
 
-    python bench/probe_plan.py --seeds 3 --nights 30           # writes bench/out/probe_plan.md
+    python bench/probe_plan.py --seeds 3 --nights 30                     # writes bench/out/probe_plan.md
+    python bench/probe_plan.py --seeds 3 --nights 30 --scenario strong   # open_data's strong selection
 """
 
 from __future__ import annotations
@@ -46,7 +47,7 @@ if str(ROOT) not in sys.path:
     sys.path.insert(0, str(ROOT))
 sys.path.insert(0, str(ROOT / "bench"))
 
-from open_data import GROUPS, base_config, load_bfi, simulate  # noqa: E402
+from open_data import GROUPS, SCENARIOS, base_config, load_bfi, simulate  # noqa: E402
 from tasks.engine.metrics import mae  # noqa: E402
 from tasks.engine.per_user import fit_correction  # noqa: E402
 from tasks.engine.trainer import fit  # noqa: E402
@@ -54,6 +55,8 @@ from tasks.evaluate.probe_plan import choose, member_facts  # noqa: E402
 from tasks.train.settings import engine_settings  # noqa: E402
 
 OUT = ROOT / "bench" / "out" / "probe_plan.md"
+#: The MAE compared is the mean over the last LAST nights (one night's MAE moves with that night's draw).
+LAST = 10
 
 
 def corrected(ckpt, organic: pd.DataFrame, probe: pd.DataFrame, debias, scale):
@@ -63,10 +66,16 @@ def corrected(ckpt, organic: pd.DataFrame, probe: pd.DataFrame, debias, scale):
     return replace(ckpt, score_map=c.score_map, user_offset=c.user_offset, user_scale=c.user_scale, info=info)
 
 
+#: Policies: who is shown the card. "planned" is the plan as shipped (activity weight linear); "planned, no
+#: activity" sets probe.plan_activity_power = 0 (bfi's MAR test cells are spread evenly over people, so
+#: activity says nothing about how much a person's correction is used there).
+POLICIES = {"planned": 1.0, "planned, no activity": 0.0}
+
+
 def run_policy(scn, base_ckpt, settings, policy: str, budget: int, nights: int, uniform_share: float,
                seed: int) -> dict:
     """One closed loop; returns MAR MAE per night and probes per selection group."""
-    rng = np.random.default_rng([seed, budget, 0 if policy == "uniform" else 1])
+    rng = np.random.default_rng([seed, budget, 0 if policy == "uniform" else 1 + int(POLICIES[policy])])
     organic = scn.organic
     people = np.array(sorted(set(organic["user_id"]) | set(scn.probe["user_id"])), dtype=object)
     # Each person's askable items: their non-test answers (``scn.oracle`` holds them, see run_seed).
@@ -84,7 +93,7 @@ def run_policy(scn, base_ckpt, settings, policy: str, budget: int, nights: int, 
             probe_all = pd.concat(probes, ignore_index=True)
             pred, _ = ckpt.score(probe_all["user_id"].to_numpy(), probe_all["item_id"].to_numpy())
             facts = member_facts(window, probe_all, probe_all["rating"].to_numpy() - pred,
-                                 (ckpt.info.get("per_user") or {}).get("own_update", {}).get("m"))
+                                 (ckpt.info.get("per_user") or {}).get("own_update", {}).get("m"), POLICIES[policy])
             chosen = choose(facts, budget, uniform_share, seed=int(rng.integers(2**31)))["member_id"].to_numpy()
         rows = []
         for u in chosen:
@@ -118,8 +127,8 @@ def askable_pool(matrix: np.ndarray, scn) -> pd.DataFrame:
 
 
 def run_seed(matrix, seed: int, budgets: list[int], uniform_budgets: list[int], nights: int, share: float,
-             say=print) -> list[dict]:
-    scn = simulate(matrix, seed, probe_user_share=0.05, probes_per_user=1)
+             sim: dict | None = None, say=print) -> list[dict]:
+    scn = simulate(matrix, seed, **{**(sim or {}), "probe_user_share": 0.05, "probes_per_user": 1})
     # The askable pool is every non-test answer (not only the simulated logs).
     scn.oracle = askable_pool(matrix, scn)
     cfg = base_config().updated({"debias.method": "plain", "model.seed": seed})
@@ -128,47 +137,51 @@ def run_seed(matrix, seed: int, budgets: list[int], uniform_budgets: list[int], 
     settings = engine_settings(base_config().updated({"model.seed": seed}))
     say(f"seed {seed}: factoriser trained in {time.perf_counter() - t0:.0f}s")
     rows = []
-    runs = [("planned", b) for b in budgets] + [("uniform", b) for b in sorted(set(uniform_budgets) | set(budgets))]
+    runs = [(p, b) for p in POLICIES for b in budgets] + [("uniform", b) for b in sorted(set(uniform_budgets) | set(budgets))]
     for policy, b in runs:
         t0 = time.perf_counter()
         r = run_policy(scn, base, settings, policy, b, nights, share, seed)
         total = sum(r["groups"].values())
-        rows.append({"seed": seed, "policy": policy, "budget": b, "mae_last": r["mae"][-1],
+        rows.append({"seed": seed, "policy": policy, "budget": b, "mae_last": float(np.mean(r["mae"][-LAST:])),
                      "mae_mean": float(np.mean(r["mae"])), "probes": total,
                      **{f"share_{g}": r["groups"][g] / max(total, 1) for g in GROUPS},
                      **{f"pop_{g}": float(np.mean(scn.user_group == g)) for g in GROUPS}})
-        say(f"seed {seed} {policy:8s} budget {b:4d}: MAR MAE night {nights} {r['mae'][-1]:.4f} "
+        say(f"seed {seed} {policy:20s} budget {b:4d}: MAR MAE last {LAST} nights {np.mean(r['mae'][-LAST:]):.4f} "
             f"(mean over nights {np.mean(r['mae']):.4f}) {time.perf_counter() - t0:.0f}s")
     return rows
 
 
 def matching_budget(df: pd.DataFrame, seed: int, target: float) -> float:
-    """Uniform budget whose last-night MAE equals ``target`` (linear interpolation; NaN outside the grid)."""
-    u = df[(df["seed"] == seed) & (df["policy"] == "uniform")].sort_values("budget")
-    b, m = u["budget"].to_numpy(float), u["mae_last"].to_numpy(float)
-    for k in range(len(b) - 1):
-        lo, hi = sorted((m[k], m[k + 1]))
-        if lo <= target <= hi and m[k] != m[k + 1]:
-            return float(b[k] + (target - m[k]) * (b[k + 1] - b[k]) / (m[k + 1] - m[k]))
-    return float("nan") if target < m.min() else float(b[0]) if target >= m[0] else float("nan")
+    """Uniform budget whose MAE equals ``target``, from a least-squares line of the seed's uniform MAEs
+    against log(budget) (one night's draw makes single points noisy; the line smooths them). NaN when the
+    line does not fall with budget."""
+    u = df[(df["seed"] == seed) & (df["policy"] == "uniform")]
+    slope, icpt = np.polyfit(np.log(u["budget"].to_numpy(float)), u["mae_last"].to_numpy(float), 1)
+    return float(np.exp((target - icpt) / slope)) if slope < 0 else float("nan")
 
 
 def _pm(x: pd.Series, digits: int = 4) -> str:
     return f"{x.mean():.{digits}f} \u00b1 {x.std(ddof=1) if len(x) > 1 else 0.0:.{digits}f}"
 
 
-def tables(df: pd.DataFrame, budgets: list[int], nights: int, share: float, seeds: int) -> str:
-    lines = [f"MAR MAE on bfi's held-back answers after {nights} nights (mean \u00b1 std over {seeds} seeds); "
-             f"planned: uniform share {share:g}",
-             "", "| probes a night | uniform | planned | planned - uniform | uniform budget matching planned |",
-             "| ---: | ---: | ---: | ---: | ---: |"]
+def tables(df: pd.DataFrame, budgets: list[int], nights: int, share: float, seeds: int, scenario: str) -> str:
+    planned = [p for p in POLICIES if p in set(df["policy"])]
+    lines = [f"Scenario: {scenario}. MAR MAE on bfi's held-back answers, mean of the last {LAST} of {nights} nights "
+             f"(mean \u00b1 std over {seeds} seeds); plans keep a uniform share of {share:g}.",
+             "", "| probes a night | policy | MAR MAE | minus uniform | uniform budget with the same MAE |",
+             "| ---: | --- | ---: | ---: | ---: |"]
     for b in budgets:
         u = df[(df["policy"] == "uniform") & (df["budget"] == b)].set_index("seed")["mae_last"]
-        p = df[(df["policy"] == "planned") & (df["budget"] == b)].set_index("seed")["mae_last"]
-        match = pd.Series([matching_budget(df, s, p[s]) for s in p.index])
-        mtxt = _pm(match, 0) if match.notna().all() else f"{_pm(match.dropna(), 0)} ({match.isna().sum()} seed(s) outside the grid)"
-        lines.append(f"| {b} | {_pm(u)} | {_pm(p)} | {_pm(p - u)} | {mtxt} |")
-    lines += ["", "Uniform budgets tried: " + ", ".join(str(b) for b in sorted(df.loc[df['policy'] == 'uniform', 'budget'].unique())),
+        lines.append(f"| {b} | uniform | {_pm(u)} | | |")
+        for name in planned:
+            p = df[(df["policy"] == name) & (df["budget"] == b)].set_index("seed")["mae_last"]
+            match = pd.Series([matching_budget(df, s, p[s]) for s in p.index])
+            mtxt = _pm(match, 0) if match.notna().all() else f"{_pm(match.dropna(), 0)} ({match.isna().sum()} seed(s) without a falling line)"
+            lines.append(f"| {b} | {name} | {_pm(p)} | {_pm(p - u)} | {mtxt} |")
+    ub = sorted(df.loc[df["policy"] == "uniform", "budget"].unique())
+    curve = df[df["policy"] == "uniform"].groupby("budget")["mae_last"]
+    lines += ["", "Uniform probe, MAR MAE by budget (the line the matching budget is read from): " +
+              ", ".join(f"{b}: {curve.mean()[b]:.4f}" for b in ub),
               "", "Share of probe ratings per selection group (population share in brackets), mean over seeds:", "",
               "| policy | budget | " + " | ".join(GROUPS) + " |", "| --- | ---: |" + " ---: |" * len(GROUPS)]
     for (policy, b), g in df[df["budget"].isin(budgets)].groupby(["policy", "budget"]):
@@ -182,7 +195,9 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--seeds", type=int, default=3)
     ap.add_argument("--nights", type=int, default=30)
     ap.add_argument("--budgets", default="28,84", help="nightly budgets compared (people a night)")
-    ap.add_argument("--uniform-budgets", default="28,42,56,84,112,168", help="uniform budgets for the match")
+    ap.add_argument("--uniform-budgets", default="28,56,84,140,196", help="uniform budgets for the match")
+    ap.add_argument("--scenario", default="default", choices=["default", "strong"],
+                    help="selection skew: open_data's default, or its 'strong selection' scenario")
     ap.add_argument("--uniform-share", type=float, default=0.3)
     ap.add_argument("--out", default=str(OUT))
     args = ap.parse_args(argv)
@@ -192,10 +207,12 @@ def main(argv: list[str] | None = None) -> int:
     ub = [int(x) for x in args.uniform_budgets.split(",")]
     matrix = load_bfi()
     rows = []
+    name = "default selection" if args.scenario == "default" else "strong selection (strength 2, alpha 0.1)"
+    sim = {} if args.scenario == "default" else SCENARIOS[name]
     for seed in range(args.seeds):
-        rows += run_seed(matrix, seed, budgets, ub, args.nights, args.uniform_share)
+        rows += run_seed(matrix, seed, budgets, ub, args.nights, args.uniform_share, sim)
     df = pd.DataFrame(rows)
-    text = tables(df, budgets, args.nights, args.uniform_share, args.seeds)
+    text = tables(df, budgets, args.nights, args.uniform_share, args.seeds, name)
     print(text)
     out = Path(args.out)
     out.parent.mkdir(parents=True, exist_ok=True)

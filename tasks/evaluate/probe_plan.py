@@ -11,7 +11,7 @@ Score of an active member ``u`` (a member with any rating in the window), in squ
 normal-normal model whose posterior mean is the shrunk ``sum / (n + m)`` of ``engine/per_user.py``, with
 ``m = sigma2 / tau2``), so the score is how much one more probe rating shrinks it, times ``w_u``, the member's
 activity (organic ratings in the window plus one, over the mean: their predictions are used that much
-more). ``tau2_u`` is shrunk toward members similar to them: members are put in :data:`SIMILAR_BINS` bins by
+more; ``probe.plan_activity_power`` sets how much: 1 linear, 0 not at all). ``tau2_u`` is shrunk toward members similar to them: members are put in :data:`SIMILAR_BINS` bins by
 how far their organic ratings sit above the items' organic means (the skew model's ``mean_vs_item``
 feature; members without organic ratings form their own bin), each bin's prior variance is estimated by the
 method of moments (``per_user.shrinkage_strength``) from its members' probe residuals, and pulled toward
@@ -62,14 +62,16 @@ def similar_groups(organic: pd.DataFrame, members: pd.Index) -> pd.Series:
 
 
 def member_facts(window: pd.DataFrame, probe_fit: pd.DataFrame, residual: np.ndarray,
-                 own_m: float | None) -> pd.DataFrame:
+                 own_m: float | None, activity_power: float = 1.0) -> pd.DataFrame:
     """Per active member (index ``member_id``, sorted): ``own_probes`` (fitting split), ``activity``
     (organic ratings), ``group``, ``prior_var`` (tau2, shrunk toward the group), ``noise_var`` (sigma2),
     ``post_var`` (v(n)) and ``score``.
 
     ``window``: the window's ratings (user_id, item_id, rating, source); ``probe_fit``: the fitting split
     of its probe ratings; ``residual``: rating minus the model's final score on ``probe_fit`` rows;
-    ``own_m``: the own update's pseudo-ratings m (None or inf: no own update was applied).
+    ``own_m``: the own update's pseudo-ratings m (None or inf: no own update was applied);
+    ``activity_power``: ``w_u`` is the activity weight to this power (``probe.plan_activity_power``; 0: every
+    member's predictions count the same).
     """
     members = pd.Index(np.sort(pd.unique(window["user_id"].astype(str))), name="member_id")
     organic = window.loc[window["source"] == ORGANIC, ["user_id", "item_id", "rating"]]
@@ -107,7 +109,8 @@ def member_facts(window: pd.DataFrame, probe_fit: pd.DataFrame, residual: np.nda
         with np.errstate(divide="ignore"):
             return np.where(t2 > 0, 1.0 / (1.0 / np.where(t2 > 0, t2, 1.0) + k / sigma2), 0.0)
 
-    weight = (activity.to_numpy(float) + 1.0) / (activity.to_numpy(float) + 1.0).mean()
+    a = (activity.to_numpy(float) + 1.0) ** activity_power
+    weight = a / a.mean()
     return pd.DataFrame({"own_probes": counts.to_numpy(np.int64), "activity": activity.to_numpy(np.int64),
                          "group": group.to_numpy(), "prior_var": t2, "noise_var": sigma2,
                          "post_var": post(n), "score": weight * (post(n) - post(n + 1))}, index=members)
@@ -203,4 +206,5 @@ def facts_from_window(window: pd.DataFrame, ckpt: Checkpoint, cfg: Config) -> pd
     """:func:`member_facts` for the window's members under ``ckpt`` (the live version's model)."""
     fitting, _ = probe_splits(window, cfg.debias.heldout_share)
     pred, _ = ckpt.score(fitting["user_id"].astype(str).to_numpy(), fitting["item_id"].astype(str).to_numpy())
-    return member_facts(window, fitting, fitting["rating"].to_numpy(float) - pred, own_pseudo_ratings(ckpt))
+    return member_facts(window, fitting, fitting["rating"].to_numpy(float) - pred, own_pseudo_ratings(ckpt),
+                        cfg.probe.plan_activity_power)
