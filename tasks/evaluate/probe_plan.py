@@ -9,14 +9,16 @@ Score of an active member ``u`` (a member with any rating in the window), in squ
 
 ``v_u(n)`` is the posterior variance of the member's own correction after ``n`` own probe ratings (the
 normal-normal model whose posterior mean is the shrunk ``sum / (n + m)`` of ``engine/per_user.py``, with
-``m = sigma2 / tau2``), so the score is how much one more probe rating shrinks it, times ``w_u``, the member's
-activity (organic ratings in the window plus one, over the mean: their predictions are used that much
-more; ``probe.plan_activity_power`` sets how much: 1 linear, 0 not at all). ``tau2_u`` is shrunk toward members similar to them: members are put in :data:`SIMILAR_BINS` bins by
-how far their organic ratings sit above the items' organic means (the skew model's ``mean_vs_item``
-feature; members without organic ratings form their own bin), each bin's prior variance is estimated by the
-method of moments (``per_user.shrinkage_strength``) from its members' probe residuals, and pulled toward
-the population's with :data:`PSEUDO_MEMBERS` members' weight. Residuals are taken before the own update
-(the live model's residual plus the member's own shift added back), so ``tau2`` is the own update's prior.
+``m = sigma2 / tau2``), so the score is how much one more probe rating shrinks it, times ``w_u``, the
+member's activity weight: ``(organic ratings in the window + 1) ** probe.plan_activity_power`` over its
+mean (their predictions are used that much more; 0 = every member counts the same).
+
+``tau2_u`` is shrunk toward members similar to them: members are put in :data:`SIMILAR_BINS` bins by how
+far their organic ratings sit above the items' organic means (the skew model's ``mean_vs_item`` feature;
+members without organic ratings form their own bin), each bin's prior variance is estimated by the method
+of moments (``per_user.shrinkage_strength``) from its members' probe residuals, and pulled toward the
+population's with :data:`PSEUDO_MEMBERS` members' weight. Residuals are taken before the own update (the
+live model's residual plus the member's own shift added back), so ``tau2`` is the own update's prior.
 
 Selection (deterministic for a seed): the planned part (``budget - uniform``) takes the highest scores among
 eligible members; then ``uniform = round(budget * probe.plan_uniform_share)`` members are drawn uniformly
