@@ -47,12 +47,13 @@ def probe_budget(date: Optional[str] = typer.Option(None, "--date", "-d", help="
         fail(exc, "probe-budget")
     t = Table(title=f"probe budget, night {date} (version {vid}; compared with {budget.paired_with})")
     d = f"{budget.regression:g}"
-    for col in ("probes a night", "held-out n", "MAE interval width", "power at " + d, "false hold",
+    for col in ("probes a night", "held-out n", "MAE interval width", "closed form", "power at " + d, "false hold",
                 f"detectable ({budget.power_target:.0%})", "enough own probes", ""):
         t.add_column(col, justify="right" if col else "left")
     for p in budget.points:
         mark = "modelled" if p.modelled else ("today" if p.probes_per_night == budget.today else "")
-        t.add_row(str(p.probes_per_night), str(p.heldout_n), _num(p.width), f"{p.power:.0%}", f"{p.false_hold:.0%}",
+        t.add_row(str(p.probes_per_night), str(p.heldout_n), _num(p.width), _num(p.width_formula), f"{p.power:.0%}",
+                  f"{p.false_hold:.0%}",
                   _num(p.detectable), "-" if math.isnan(p.own_share) else f"{p.own_share:.0%}", mark)
     console.print(t)
     console.print(budget.sentence(), highlight=False, soft_wrap=True)
