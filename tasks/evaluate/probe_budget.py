@@ -33,6 +33,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import asdict, dataclass, field
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -43,7 +44,7 @@ from tasks.config import Config, GateConfig
 from tasks.engine.checkpoint import Checkpoint
 from tasks.evaluate.evaluation import Evaluation, ModelErrors
 from tasks.evaluate.gate import judge_errors
-from tasks.evaluate.probe_plan import own_pseudo_ratings, probe_splits
+from tasks.evaluate.probe_plan import own_pseudo_ratings, probe_splits, uniform_heldout
 from tasks.schemas import PROBE
 
 #: Nightly counts tried, as multiples of today's: resampled up to 1, modelled above.
@@ -262,11 +263,14 @@ def budget_table(budget: Budget) -> list[dict]:
 
 
 def budget_from_window(window: pd.DataFrame, run_date: str, candidate: Checkpoint, baseline: Checkpoint | None,
-                       baseline_name: str, cfg: Config) -> Budget:
+                       baseline_name: str, cfg: Config, plans: Path | None = None) -> Budget:
     """The budget of night ``run_date`` from its window (rows with ``dt``, ``source``), the night's candidate
-    and the model it was judged against (``baseline_name``: "live" or "shadow"; None: no baseline). Raises
-    ``ValueError`` when the night has too few probe ratings for a budget."""
+    and the model it was judged against (``baseline_name``: "live" or "shadow"; None: no baseline). With
+    ``plans`` (the workspace's plan folder), the held-out ratings are those the gate judges on
+    (``probe_plan.uniform_heldout``). Raises ``ValueError`` when the night has too few probe ratings."""
     fitting, heldout = probe_splits(window, cfg.debias.heldout_share)
+    if plans is not None:
+        heldout, _ = uniform_heldout(heldout, window, plans)
     users, items = heldout["user_id"].astype(str).to_numpy(), heldout["item_id"].astype(str).to_numpy()
     y = heldout["rating"].to_numpy(float)
     err_c = np.abs(candidate.score(users, items)[0] - y)

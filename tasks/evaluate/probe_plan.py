@@ -30,6 +30,7 @@ row records its ``draw_probability`` so a held-out error can be reweighted (:fun
 from __future__ import annotations
 
 import math
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -40,6 +41,9 @@ from tasks.engine.per_user import shrinkage_strength
 from tasks.engine.splits import heldout_mask
 from tasks.schemas import ORGANIC, PROBE
 
+#: Folder of plan files in the workspace: ``<workspace>/probe-plans/<date>.parquet`` (the date the cards
+#: are shown, which is the date their probe ratings are logged under).
+PLANS_DIR = "probe-plans"
 #: Bins of similar members (quantiles of the organic mean above the items' means), plus "no organic".
 SIMILAR_BINS = 5
 #: Weight of the population's prior variance in a bin's, in members (common practice, no source).
@@ -210,3 +214,34 @@ def facts_from_window(window: pd.DataFrame, ckpt: Checkpoint, cfg: Config) -> pd
     pred, _ = ckpt.score(fitting["user_id"].astype(str).to_numpy(), fitting["item_id"].astype(str).to_numpy())
     return member_facts(window, fitting, fitting["rating"].to_numpy(float) - pred, own_pseudo_ratings(ckpt),
                         cfg.probe.plan_activity_power)
+
+
+def uniform_heldout(heldout: pd.DataFrame, window: pd.DataFrame, plans: Path) -> tuple[pd.DataFrame, int]:
+    """The held-out probe ratings the gate may judge on when probe plans were followed: every one except
+    those of members a plan *planned* (``drawn_by == "planned"``) on the rating's date. Returns the kept
+    ratings and how many were left out.
+
+    Planned members were chosen for what the model does not know about them; their probe ratings would
+    tilt the held-out MAE toward them. What is left was drawn uniformly (the uniform share, and every
+    night without a plan), so it stays an unbiased sample of the eligible members, short of the few the
+    plan took (at most ``1 - plan_uniform_share`` of the budget, among all active members).
+    :func:`weighted_mae` is the exact alternative that keeps every rating. ``heldout``: user_id, item_id,
+    rating; ``window``: the window with ``dt`` and ``source`` (one row per pair: the store keeps the latest).
+    """
+    if heldout.empty or not plans.is_dir():
+        return heldout, 0
+    dates = set(window["dt"].astype(str).unique())
+    planned = []
+    for f in sorted(plans.glob("*.parquet")):
+        if f.stem in dates:
+            t = pd.read_parquet(f, columns=["member_id", "drawn_by"])
+            planned.append(pd.DataFrame({"dt": f.stem, "user_id": t.loc[t["drawn_by"] == PLANNED, "member_id"]}))
+    if not planned:
+        return heldout, 0
+    taken = pd.concat(planned, ignore_index=True).astype(str).drop_duplicates()
+    probes = (window.loc[window["source"] == PROBE, ["user_id", "item_id", "dt"]].astype(str)
+              .drop_duplicates(["user_id", "item_id"], keep="last"))
+    dated = heldout.astype({"user_id": str, "item_id": str}).merge(probes, on=["user_id", "item_id"], how="left")
+    drop = dated.merge(taken.assign(_planned=True), on=["dt", "user_id"], how="left")["_planned"].fillna(False)
+    drop = drop.to_numpy(bool)
+    return heldout.loc[~drop].reset_index(drop=True), int(drop.sum())

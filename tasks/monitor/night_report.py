@@ -23,6 +23,7 @@ from tasks.config import Config
 from tasks.engine.checkpoint import Checkpoint
 from tasks.engine.profiles import soft_cdf, thresholds
 from tasks.evaluate.evaluation import Evaluation
+from tasks.evaluate.probe_plan import PLANS_DIR
 from tasks.ingest.logs import IngestResult, rejected_by_reason
 from tasks.monitor.alert_advice import with_advice
 from tasks.monitor.alert_delivery import Channels, deliver_night
@@ -151,5 +152,6 @@ def measure_night(cfg: Config, ws: Workspace, run_date: str, window: pd.DataFram
         reference_shares=[r["reference_share"] for r in cand.rounds], evaluation=evaluation,
         volumes=volumes, versions={"candidate": version_id, "live": base_id}, **sample)
     shadow = trained.shadow.checkpoint if trained.shadow else None
-    row = with_probe_budget(row, night_budget(window, run_date, cand.checkpoint, base, shadow, cfg))
+    row = with_probe_budget(row, night_budget(window, run_date, cand.checkpoint, base, shadow, cfg,
+                                              ws.root / PLANS_DIR))
     return judge_row(ws, cfg, row)

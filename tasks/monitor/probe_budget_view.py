@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import json
 from collections.abc import Mapping
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -30,12 +31,12 @@ CAUTIONS = (
 
 
 def night_budget(window: pd.DataFrame, run_date: str, candidate: Checkpoint, live: Checkpoint | None,
-                 shadow: Checkpoint | None, cfg: Config) -> dict | None:
+                 shadow: Checkpoint | None, cfg: Config, plans: Path | None = None) -> dict | None:
     """Tonight's budget as plain data (``Budget.to_dict()``), compared with live (else the shadow model);
     None when the night has too few probe ratings for one."""
     baseline, name = (live, "live") if live is not None else (shadow, "shadow")
     try:
-        return jsonable(budget_from_window(window, run_date, candidate, baseline, name, cfg).to_dict())
+        return jsonable(budget_from_window(window, run_date, candidate, baseline, name, cfg, plans).to_dict())
     except ValueError:
         return None
 

@@ -18,7 +18,7 @@ from tasks.config import Config
 from tasks.dates import shift
 from tasks.engine.checkpoint import Checkpoint
 from tasks.evaluate.probe_budget import Budget, budget_from_window
-from tasks.evaluate.probe_plan import choose, facts_from_window, opted_out_members
+from tasks.evaluate.probe_plan import PLANS_DIR, choose, facts_from_window, opted_out_members
 from tasks.files import atomic_write_table
 from tasks.ingest.store import read_window
 from tasks.publish.versions import list_versions, live_version, load_checkpoint
@@ -31,7 +31,7 @@ class ProbeInputError(ValueError):
 
 def plans_folder(ws: Workspace) -> Path:
     """Where ``tarewise probe-plan`` writes by default: ``<workspace>/probe-plans/<date>.parquet``."""
-    return ws.root / "probe-plans"
+    return ws.root / PLANS_DIR
 
 
 def version_of_night(ws: Workspace, run_date: str) -> dict | None:
@@ -62,7 +62,7 @@ def night_budget(ws: Workspace, cfg: Config, run_date: str) -> tuple[Budget, str
         baseline, name = load_checkpoint(ws, vid, "shadow"), "shadow"
     window = read_window(ws, run_date, cfg.window.days)
     try:
-        return budget_from_window(window, run_date, cand, baseline, name, cfg), vid
+        return budget_from_window(window, run_date, cand, baseline, name, cfg, plans_folder(ws)), vid
     except ValueError as exc:
         raise ProbeInputError(f"night {run_date}: {exc}") from None
 
