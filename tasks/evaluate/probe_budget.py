@@ -98,7 +98,7 @@ class Budget:
             return (f"no probe count lets the gate detect a {d} regression {p} of the time: it tolerates "
                     f"{self.tolerance:g} (gate.tolerance_mae) by design")
         how = ("above today's count: modelled" if self.needed_modelled
-               else "closed form, below today's count where resampling the stored probe ratings checks it")
+               else "closed form, checked by resampling below today's count")
         today = next((q for q in self.points if q.probes_per_night == self.today), None)
         now = f"; today ({self.today}) it does {today.power:.0%} of the time" if today else ""
         return (f"at {self.needed} probes a night the gate detects a {d} regression {p} of the time "
