@@ -33,6 +33,9 @@ def print_night(out: dict) -> None:
                       f"{out['version_id']} --reason ...", highlight=False, markup=False)
     for a in out.get("alerts", []):
         console.print(f"[bold magenta]alert[/] {a}", highlight=False)
+    warning = (out.get("message") or "").partition("; report warning: ")[2]
+    if warning:
+        console.print("[yellow]report warning[/]: " + warning.replace("[", r"\["), highlight=False, soft_wrap=True)
 
 
 def versions_table(manifests: list[dict], title: str, reviews: dict | None = None,
