@@ -12,7 +12,8 @@ from flows.cli.common import console
 
 
 def print_night(out: dict) -> None:
-    """One night's outcome (the nightly flow's return value): evaluation table, gate decision, alerts;
+    """One night's outcome (the nightly flow's return value): evaluation table, the anchor comparison
+    (when there is one), gate decision, alerts;
     a night that did not finish prints its status and message instead."""
     if out["status"] != "done":
         console.print(f"{out['run_date']}: [yellow]{out['status']}[/] - {out.get('message', '')}")
@@ -26,6 +27,10 @@ def print_night(out: dict) -> None:
             t.add_row(name, str(e["n"]), f"{e['mae']:.4f}", f"{e['mae_lo']:.4f} - {e['mae_hi']:.4f}",
                       f"{e['rmse']:.4f}")
     console.print(t)
+    a = out["evaluation"].get("anchor")
+    if a:
+        console.print(f"anchor: {a['version_id']} {a['mae']:.4f} on {a['n']} held-out ratings, candidate "
+                      f"{a['candidate_mae']:.4f} on the same ({a['margin']:+.4f})", highlight=False, markup=False)
     console.print(f"gate: {'promote' if out['gate']['promote'] else 'hold'} - {out['gate']['reason']}",
                   highlight=False)
     if out["gate"].get("awaiting_approval"):

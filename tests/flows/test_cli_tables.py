@@ -45,6 +45,18 @@ def test_a_finished_night_lists_the_models_it_evaluated_then_gate_and_alerts(cap
     assert models == ["candidate", "shadow"]                          # no live model yet: no row
     assert "gate: hold - candidate not better than live" in out
     assert "alert selection skew shifted for segment 'audiobook'" in out
+    assert "anchor:" not in out                                        # none tonight: no line
+
+
+def test_a_finished_night_with_an_anchor_says_how_the_candidate_compares(capsys) -> None:
+    anchor = {"version_id": "v20261101-1", "mae": 0.80, "candidate_mae": 0.8123, "margin": 0.0123, "n": 97}
+    print_night({"run_date": "2026-11-03", "status": "done", "version_id": "v20261103-1", "state": "held",
+                 "evaluation": {"candidate": _eval(0.8123), "live": _eval(0.81), "anchor": anchor},
+                 "gate": {"promote": False, "reason": "worse than the anchor"}})
+    out = capsys.readouterr().out
+    assert "anchor: v20261101-1 0.8000 on 97 held-out ratings, candidate 0.8123 on the same (+0.0123)" in out
+    models = [line.split("│")[1].strip() for line in out.splitlines() if line.count("│") > 2]
+    assert models == ["candidate", "live"]
 
 
 def test_versions_table_fills_missing_metrics_and_gate_fields() -> None:
