@@ -43,6 +43,7 @@ bootstrap = 20
 
 [gate]
 tolerance_mae = 0.5
+anchor_budget = 0.5
 max_segment_regression = 1.0
 
 [retention]

@@ -64,7 +64,8 @@ def test_three_nights_publish_three_versions_with_sane_outputs(three_nights):
         assert row["message"] == out["gate"]["reason"] and row["rows_ingested"] == out["counts"]["rows_ingested"]
         assert json.loads(row["durations_json"]) == out["durations"]
         # the report stage starts before the gate (tonight's metrics and alerts) and ends after publishing
-        assert list(out["durations"]) == ["ingest", "window", "train", "evaluate", "report", "predict", "publish"]
+        assert list(out["durations"]) == ["ingest", "window", "train", "evaluate", "anchor", "report", "predict",
+                                         "publish"]
 
 
 def test_debiased_candidate_beats_plain_shadow_on_demo(three_nights):
