@@ -187,6 +187,30 @@ def release_orphans(cfg: Config) -> list[str]:
             client.set_flow_run_state(run.id, Crashed(message="tarewise serve started again: this run's serve was "
                                                               "gone and no run holds the workspace lock"), force=True)
             out.append(f"flow run {run.name} ({run.id}) was left {run.state.name} by a stopped serve; marked Crashed")
+        out += _settle_from_ledger(client, ws)
+    return out
+
+
+def _settle_from_ledger(client, ws: Workspace, last: int = 100) -> list[str]:
+    """Nights the ledger finished whose Prefect flow run is not final (the run ended while the Prefect
+    server was unreachable, so its last state never arrived): give Prefect the ledger's outcome."""
+    from prefect.states import Completed, Crashed
+
+    from tasks.ledger import read_ledger
+    rows = read_ledger(ws).tail(last)
+    out = []
+    for _, r in rows[rows["flow_run_id"].notna() & ~rows["status"].isin(["running"])].iterrows():
+        try:
+            run = client.read_flow_run(r["flow_run_id"])
+        except Exception:  # noqa: BLE001 - a run from another server: nothing to settle here
+            continue
+        if run.state is None or run.state.is_final():
+            continue
+        note = f"tarewise ledger: night {r['run_date']} {r['status']}"
+        state = Completed(message=note) if r["status"] in ("done", "skipped") else Crashed(message=note)
+        client.set_flow_run_state(run.id, state, force=True)
+        out.append(f"flow run {run.name} ({run.id}) was {run.state.name} though the ledger says night "
+                   f"{r['run_date']} is {r['status']}; set to {state.name}")
     return out
 
 
