@@ -122,11 +122,13 @@ def main() -> int:
     ap.add_argument("--chaos-every", type=float, nargs=2, default=(60, 150), help="Seconds between kills (range); "
                     "each kill waits for a night at work (a running ledger row), then 0-8 s more.")
     ap.add_argument("--seed", type=int, default=15)
+    ap.add_argument("--resume", action="store_true", help="Continue a soak in --root that stopped (same logs, "
+                    "workspace and server database; kill counts carried over from kills.json).")
     a = ap.parse_args()
     rng = random.Random(a.seed)
     root = a.root.resolve()
-    if root.exists() and any(root.iterdir()):
-        raise SystemExit(f"{root} is not empty; give a fresh --root")
+    if root.exists() and any(root.iterdir()) and not a.resume:
+        raise SystemExit(f"{root} is not empty; give a fresh --root (or --resume)")
     root.mkdir(parents=True, exist_ok=True)
     port = free_port()
     api = f"http://127.0.0.1:{port}/api"
@@ -137,11 +139,16 @@ def main() -> int:
 
     from tasks.operate.demo_data import generate
     from tasks.workspace import Workspace
-    end = date.today() - timedelta(days=1)
-    start = end - timedelta(days=a.days - 1)
-    generate(root / "logs", start_date=start.isoformat(), days=a.days, n_members=300, n_titles=200,
-             organic_per_day=300, seed=a.seed, probe_share=0.1)
-    (root / "soak.toml").write_text(TOML.format(per_run=a.per_run))
+    if a.resume:
+        from tasks.ingest.logs import list_partition_dates
+        held = list_partition_dates(str(root / "logs"))
+        start, a.days = date.fromisoformat(held[0]), len(held)
+    else:
+        end = date.today() - timedelta(days=1)
+        start = end - timedelta(days=a.days - 1)
+        generate(root / "logs", start_date=start.isoformat(), days=a.days, n_members=300, n_titles=200,
+                 organic_per_day=300, seed=a.seed, probe_share=0.1)
+        (root / "soak.toml").write_text(TOML.format(per_run=a.per_run))
     ws = Workspace.at(root / "ws")
     dates = [(start + timedelta(days=k)).isoformat() for k in range(a.days)]
     cli = [sys.executable, "-m", "flows.cli"]
@@ -153,14 +160,15 @@ def main() -> int:
                               start_new_session=True)
     serve = None
     serve_log = open(root / "serve.log", "a")
-    kills: Counter = Counter()
+    kills: Counter = Counter(json.loads((root / "kills.json").read_text()) if a.resume else {})
     t_start = time.time()
     try:
         wait_health(api)
         log(f"server up on {api}; {a.days} days {dates[0]}..{dates[-1]}, {a.per_run} night(s) per minute run")
-        seed = subprocess.run([*cli, "run", "--date", dates[0], *common], env=env, cwd=REPO, capture_output=True,
-                              text=True, timeout=900)
-        log(f"seed night {dates[0]}: exit {seed.returncode}")
+        if not a.resume:
+            seed = subprocess.run([*cli, "run", "--date", dates[0], *common], env=env, cwd=REPO,
+                                  capture_output=True, text=True, timeout=900)
+            log(f"seed night {dates[0]}: exit {seed.returncode}")
 
         def start_serve():
             return subprocess.Popen([*cli, "serve", *common], env=env, cwd=REPO, stdout=serve_log,
@@ -208,6 +216,7 @@ def main() -> int:
                     log(f"SIGTERM serve {serve.pid}; restart in 5 s")
                     time.sleep(5)
                     serve = start_serve()
+                (root / "kills.json").write_text(json.dumps(dict(kills)))
             time.sleep(2)
         minutes = (time.time() - t_start) / 60
         log(f"loop ended after {minutes:.1f} min")

@@ -153,6 +153,67 @@ def build_deployments(cfg: Config) -> list[RunnerDeployment]:
     return [night, fill]
 
 
+def release_orphans(cfg: Config) -> list[str]:
+    """``serve`` on start: flow runs of the two deployments still ``Running`` in Prefect while no run holds
+    the workspace lock were left by a serve that was killed (their process is gone, or between nights
+    as an orphan): mark them Crashed, which also frees the deployment's concurrency slot that would
+    otherwise keep every later scheduled run waiting. Returns one line per run marked."""
+    from prefect.client.orchestration import get_client
+    from prefect.client.schemas.filters import (DeploymentFilter, DeploymentFilterId, FlowRunFilter,
+                                                FlowRunFilterState, FlowRunFilterStateType)
+    from prefect.client.schemas.objects import StateType
+    from prefect.states import Crashed
+
+    from tasks.lock import is_stale, read_lock
+    ws = Workspace.at(cfg.paths.workspace)
+    holder = read_lock(ws.lock)
+    if ws.lock.exists() and holder is not None and not is_stale(holder, cfg.runtime.lock_stale_seconds):
+        return []   # a run is at work: leave Prefect's view alone
+    out = []
+    with get_client(sync_client=True) as client:
+        ids = []
+        for name in (f"{scheduled_nightly.name}/{NIGHTLY_DEPLOYMENT}", f"{scheduled_backfill.name}/{BACKFILL_DEPLOYMENT}"):
+            try:
+                ids.append(client.read_deployment_by_name(name).id)
+            except Exception:  # noqa: BLE001 - not registered yet
+                continue
+        if not ids:
+            return []
+        runs = client.read_flow_runs(
+            deployment_filter=DeploymentFilter(id=DeploymentFilterId(any_=ids)),
+            flow_run_filter=FlowRunFilter(state=FlowRunFilterState(type=FlowRunFilterStateType(
+                any_=[StateType.RUNNING, StateType.PENDING]))))
+        for run in runs:
+            client.set_flow_run_state(run.id, Crashed(message="tarewise serve started again: this run's serve was "
+                                                              "gone and no run holds the workspace lock"), force=True)
+            out.append(f"flow run {run.name} ({run.id}) was left {run.state.name} by a stopped serve; marked Crashed")
+        out += _settle_from_ledger(client, ws)
+    return out
+
+
+def _settle_from_ledger(client, ws: Workspace, last: int = 100) -> list[str]:
+    """Nights the ledger finished whose Prefect flow run is not final (the run ended while the Prefect
+    server was unreachable, so its last state never arrived): give Prefect the ledger's outcome."""
+    from prefect.states import Completed, Crashed
+
+    from tasks.ledger import read_ledger
+    rows = read_ledger(ws).tail(last)
+    out = []
+    for _, r in rows[rows["flow_run_id"].notna() & ~rows["status"].isin(["running"])].iterrows():
+        try:
+            run = client.read_flow_run(r["flow_run_id"])
+        except Exception:  # noqa: BLE001 - a run from another server: nothing to settle here
+            continue
+        if run.state is None or run.state.is_final():
+            continue
+        note = f"tarewise ledger: night {r['run_date']} {r['status']}"
+        state = Completed(message=note) if r["status"] in ("done", "skipped") else Crashed(message=note)
+        client.set_flow_run_state(run.id, state, force=True)
+        out.append(f"flow run {run.name} ({run.id}) was {run.state.name} though the ledger says night "
+                   f"{r['run_date']} is {r['status']}; set to {state.name}")
+    return out
+
+
 def catch_up_on_start(cfg: Config) -> str | None:
     """``serve`` on start: when nights whose slot has passed are not done (serve was down, a restart dropped
     a slot), start one nightly run now for the latest of them (it catches up the rest first). Returns the

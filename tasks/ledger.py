@@ -42,7 +42,9 @@ from tasks.workspace import Workspace
 def read_ledger(ws: Workspace) -> pd.DataFrame:
     if not ws.ledger.exists():
         return LEDGER.empty_table().to_pandas()
-    df = pq.read_table(ws.ledger).to_pandas()
+    # Read the bytes once, then parse: a file replaced between pyarrow's size check and its read (another
+    # run finishing a row) otherwise fails with "Page was smaller than expected" (seen in bench/soak.py).
+    df = pq.read_table(pa.BufferReader(ws.ledger.read_bytes())).to_pandas()
     for name in LEDGER.names:   # a ledger written before a column existed
         if name not in df.columns:
             df[name] = None

@@ -240,6 +240,9 @@ def serve(work_pool: Optional[str] = typer.Option(None, "--work-pool", help="Reg
     from flows.deployments import catch_up_on_start
     for d in deployments:   # registered first, so a catch-up run can be started before serving
         d.apply()
+    from flows.deployments import release_orphans
+    for note in release_orphans(cfg):
+        console.print(note, highlight=False, soft_wrap=True)
     line = catch_up_on_start(cfg)
     if line:
         console.print(line, highlight=False, soft_wrap=True)

@@ -82,7 +82,8 @@ def runs_table(runs: list[dict]) -> Table:
     t = Table(title=f"last {len(runs)} run(s)")
     for col in ("started (UTC)", "kind", "night", "status", "version", "state", "seconds", "message"):
         t.add_column(col, overflow="fold")
-    colour = {"done": "green", "failed": "red", "interrupted": "red", "running": "yellow", "skipped": "yellow"}
+    colour = {"done": "green", "failed": "red", "interrupted": "red", "refused": "red", "running": "yellow",
+              "skipped": "yellow"}
     for r in runs:
         c = colour.get(r["status"], "white")
         t.add_row(r["started_at"], r["kind"], r["run_date"], f"[{c}]{r['status']}[/]", r["version_id"] or "-",
