@@ -295,7 +295,7 @@ def test_report_fits_the_screen_without_sideways_scroll_or_broken_numbers(stored
     assert got["scrollWidth"] <= width, got["stickingOut"][:10]
     assert got["stickingOut"] == []
     assert got["wrapped"] == []
-    assert len(got["charts"]) == 6   # the anchor trend and the probe budget among them
+    assert len(got["charts"]) == 6   # the anchor trend and the probe budget curve among them
     for chart in got["charts"]:
         assert chart["narrow"] is (width < 600), chart          # the phone gets the phone-sized drawing
         assert chart["textPx"] >= MIN_CHART_TEXT_PX, chart
