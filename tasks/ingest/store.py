@@ -34,6 +34,24 @@ PART_FILE = "part-0.parquet"
 _PACK_LIMIT = 2**62      # (user, item, source) codes packed into one int64 key below this many combinations
 
 
+ID_COLUMNS = ("user_id", "item_id", "source")     # read as dictionary-encoded columns (integer codes)
+
+
+def _sorted_dictionary(col: pa.ChunkedArray) -> pa.DictionaryArray:
+    """``col`` (dictionary chunks) as one dictionary array whose dictionary is sorted (byte order of
+    UTF-8, i.e. code-point order, as Python sorts text), so code order is text order; int32 codes."""
+    col = col.unify_dictionaries()
+    if col.num_chunks == 0:
+        return pa.DictionaryArray.from_arrays(pa.array([], pa.int32()), pa.array([], pa.string()))
+    dictionary = col.chunk(0).dictionary
+    order = pc.array_sort_indices(dictionary).to_numpy()
+    rank = np.empty(len(order), np.int32)
+    rank[order] = np.arange(len(order), dtype=np.int32)
+    codes = np.concatenate([c.indices.to_numpy(zero_copy_only=False) for c in col.chunks]) if col.num_chunks \
+        else np.empty(0, np.int32)
+    return pa.DictionaryArray.from_arrays(pa.array(rank[codes], pa.int32()), dictionary.take(pa.array(order)))
+
+
 def _codes(col: pa.ChunkedArray) -> np.ndarray:
     """Integer codes of a text or dictionary column (equal values, equal codes), int64."""
     if isinstance(col, pa.ChunkedArray):
@@ -60,7 +78,7 @@ def latest_mask(table: pa.Table) -> np.ndarray:
     if n < 2:
         return keep
     user, item = _codes(table["user_id"]), _codes(table["item_id"])
-    src = pc.equal(table["source"], schemas.PROBE).to_numpy(zero_copy_only=False).astype(np.int64)
+    src = _is_probe(table["source"]).astype(np.int64)
     n_item = int(item.max()) + 1
     if (int(user.max()) + 1) * n_item * 2 < _PACK_LIMIT:
         key = (user * n_item + item) * 2 + src
@@ -85,6 +103,16 @@ def latest_mask(table: pa.Table) -> np.ndarray:
     last = np.append(k[1:] != k[:-1], True)
     keep[rows[sub][~last]] = False
     return keep
+
+
+def _is_probe(col: pa.ChunkedArray | pa.Array) -> np.ndarray:
+    """Boolean ``[N]``: the row's source is a probe rating (text or dictionary column)."""
+    if isinstance(col, pa.ChunkedArray):
+        col = col.combine_chunks() if col.num_chunks != 1 else col.chunk(0)
+    if pa.types.is_dictionary(col.type):
+        hit = pc.equal(col.dictionary, schemas.PROBE).to_numpy(zero_copy_only=False)
+        return hit[col.indices.to_numpy(zero_copy_only=False)] if len(hit) else np.zeros(len(col), bool)
+    return pc.equal(col, schemas.PROBE).to_numpy(zero_copy_only=False)
 
 
 def _to_store_table(valid: pd.DataFrame | pa.Table) -> pa.Table:
@@ -152,31 +180,55 @@ def empty_window() -> pd.DataFrame:
     return schema.empty_table().to_pandas()
 
 
-def read_window(ws: Workspace, run_date: str, days: int, categorical: bool = False) -> pd.DataFrame:
-    """Ratings of the stored dates in (run_date - days, run_date], latest event per key across dates.
+def read_window_table(ws: Workspace, run_date: str, days: int) -> pa.Table:
+    """The window as Arrow: ratings of the stored dates in (run_date - days, run_date], latest event per key.
 
-    Columns: schemas.RATINGS (user_id, item_id, rating, event_time, source) + ``dt`` (the stored date,
-    text). Rows in date order, then stored order. Empty frame with those dtypes when nothing is stored.
-    ``categorical=True`` returns user_id, item_id, source and dt as pandas categoricals (less memory
-    on large windows).
+    Columns: user_id, item_id and source as dictionary-encoded text (int32 codes into one sorted
+    dictionary per column, so code order is text order), rating (float64), event_time, dt (the stored
+    date, dictionary-encoded). Rows in date order, then stored order. The ids stay codes all the way:
+    Parquet's own dictionary pages are read as such (``read_dictionary``), the days' dictionaries are
+    unified, and the latest event per key is found on the integer codes.
+    Stores written before this read (plain text columns, no other layout) are read the same way.
     """
     tables = []
     dates = window_dates(ws, run_date, days)
     for k, d in enumerate(dates):
-        t = pq.read_table(ws.partition(ws.store, d) / PART_FILE, columns=schemas.RATINGS.names)
+        t = pq.read_table(ws.partition(ws.store, d) / PART_FILE, columns=schemas.RATINGS.names,
+                          read_dictionary=list(ID_COLUMNS))
         tables.append(t.append_column("dt", pa.DictionaryArray.from_arrays(
             pa.array(np.full(t.num_rows, k, np.int32)), pa.array(dates, pa.string()))))
-    text_cols = ["user_id", "item_id", "source"]
     if not tables:
-        out = empty_window()
-        return out.astype({c: "category" for c in (*text_cols, "dt")}) if categorical else out
+        return window_schema().empty_table()
     table = pa.concat_tables(tables)
+    del tables
+    for c in ID_COLUMNS:
+        table = table.set_column(table.schema.get_field_index(c), c, _sorted_dictionary(table[c]))
     keep = latest_mask(table)
     if not keep.all():
         table = table.filter(pa.array(keep))
+    return table
+
+
+def window_schema() -> pa.Schema:
+    """Columns of :func:`read_window_table`: schemas.RATINGS with the text columns dictionary-encoded, + dt."""
+    text = pa.dictionary(pa.int32(), pa.string())
+    return pa.schema([pa.field(f.name, text if f.name in ID_COLUMNS else f.type, nullable=False)
+                      for f in schemas.RATINGS] + [pa.field("dt", text, nullable=False)])
+
+
+def read_window(ws: Workspace, run_date: str, days: int, categorical: bool = False) -> pd.DataFrame:
+    """Ratings of the stored dates in (run_date - days, run_date], latest event per key across dates
+    (:func:`read_window_table` as pandas).
+
+    Columns: schemas.RATINGS (user_id, item_id, rating, event_time, source) + ``dt`` (the stored date,
+    text). Rows in date order, then stored order. Empty frame with those dtypes when nothing is stored.
+    ``categorical=True`` returns user_id, item_id, source and dt as pandas categoricals whose categories
+    are sorted (integer codes plus one copy of each distinct text: what the night uses, far less memory
+    on large windows); ``False`` returns them as text.
+    """
+    table = read_window_table(ws, run_date, days)
     if categorical:
-        for c in text_cols:
-            table = table.set_column(table.schema.get_field_index(c), c, pc.dictionary_encode(table[c]))
-    else:
-        table = table.set_column(table.schema.get_field_index("dt"), "dt", table["dt"].cast(pa.string()))
+        return table.to_pandas()
+    for c in (*ID_COLUMNS, "dt"):
+        table = table.set_column(table.schema.get_field_index(c), c, table[c].cast(pa.string()))
     return table.to_pandas()
