@@ -57,6 +57,63 @@ def _rss_mb() -> float:
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / (1024 if sys.platform != "darwin" else 2**20)
 
 
+def _rss_now_mb() -> float:
+    with open("/proc/self/statm") as f:
+        return int(f.read().split()[1]) * os.sysconf("SC_PAGE_SIZE") / 2**20
+
+
+class StageMemory:
+    """Peak RSS per stage of the nights run while it is on: a thread samples ``/proc/self/statm`` every
+    20 ms and files each sample under the stage the run is in (the ledger's ``RunRecord.stage`` is
+    wrapped to say which). A sample is a lower bound of the true peak (a spike shorter than 20 ms can be
+    missed); the process's ``ru_maxrss`` is the exact whole-run peak."""
+
+    def __init__(self) -> None:
+        import threading
+        from contextlib import contextmanager
+
+        from tasks.ledger import RunRecord
+        self.current, self.peaks, self._stop = "outside", {}, threading.Event()
+        original = RunRecord.stage
+        memory = self
+
+        @contextmanager
+        def stage(record, name):
+            before, memory.current = memory.current, name
+            try:
+                with original(record, name):
+                    yield
+            finally:
+                memory.current = before
+        RunRecord.stage = stage
+        self._thread = threading.Thread(target=self._run, daemon=True)
+        self._thread.start()
+
+    def _run(self) -> None:
+        while not self._stop.wait(0.02):
+            rss = _rss_now_mb()
+            self.peaks[self.current] = max(self.peaks.get(self.current, 0.0), rss)
+
+    def stop(self) -> dict:
+        self._stop.set()
+        self._thread.join()
+        return {k: round(v, 1) for k, v in self.peaks.items()}
+
+
+def _reset_peak() -> None:
+    """Reset this process's peak RSS (Linux: ``echo 5 > /proc/self/clear_refs`` resets VmHWM)."""
+    with open("/proc/self/clear_refs", "w") as f:
+        f.write("5")
+
+
+def _peak_mb() -> float:
+    """Peak RSS since the last :func:`_reset_peak` (VmHWM of /proc/self/status), MB."""
+    for line in Path("/proc/self/status").read_text().splitlines():
+        if line.startswith("VmHWM:"):
+            return int(line.split()[1]) / 1024
+    raise RuntimeError("no VmHWM in /proc/self/status")
+
+
 def machine() -> dict:
     cpu = platform.processor() or platform.machine()
     try:
@@ -140,6 +197,7 @@ def run_case(size: str, logs: Path, work: Path, method: str, seed_epochs: int, r
     os.environ.setdefault("PREFECT_LOGGING_LEVEL", "WARNING")
     os.environ.setdefault("PREFECT_SERVER_ANALYTICS_ENABLED", "false")
     os.environ.setdefault("DO_NOT_TRACK", "1")
+    os.environ.setdefault("PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS", "180")   # a loaded, shared machine
     Path(os.environ["PREFECT_HOME"]).mkdir(parents=True, exist_ok=True)
     import torch
 
@@ -151,6 +209,7 @@ def run_case(size: str, logs: Path, work: Path, method: str, seed_epochs: int, r
     from tasks.workspace import Workspace
 
     torch.set_num_threads(1)
+    out_base = {"rss_base_mb": _rss_now_mb()}     # interpreter + torch + pandas/pyarrow + Prefect client, no data
     load_start = os.getloadavg()
     cpu0 = time.process_time()
     dates = ingest.list_partition_dates(str(logs))
@@ -162,7 +221,7 @@ def run_case(size: str, logs: Path, work: Path, method: str, seed_epochs: int, r
     ws = Workspace.at(cfg.paths.workspace)
     files = {d: [str(p) for p in sorted((logs / f"dt={d}").glob("*.parquet"))] for d in dates}
     stored, seed_day, night_day = dates[:-2], dates[-2], dates[-1]
-    out: dict = {"size": size, "method": method, "runner": runner, "days": len(dates), "shared": shared}
+    out: dict = {"size": size, "method": method, "runner": runner, "days": len(dates), "shared": shared, **out_base}
 
     # 1. store the first days with the plain ingest functions (what the ingest tasks call)
     pre_files = [f for d in stored for f in files[d]]
@@ -202,6 +261,9 @@ def run_case(size: str, logs: Path, work: Path, method: str, seed_epochs: int, r
         from pyinstrument import Profiler
         profiler = Profiler(interval=0.005)
         profiler.start()
+    _reset_peak()
+    out["rss_before_night_mb"] = _rss_now_mb()
+    memory = StageMemory()
     t0 = time.perf_counter()
     # base_from: warm-start from the seed night even when the gate held it (a 2-epoch cold start may lose
     # to its shadow); the measured night is then the production case, a fine-tune of the previous model.
@@ -211,6 +273,8 @@ def run_case(size: str, logs: Path, work: Path, method: str, seed_epochs: int, r
         profiler.stop()
         profile.write_text(profiler.output_text(unicode=False, color=False, show_all=False))
     out["rss_after_night_mb"] = _rss_mb()
+    out["night_peak_rss_mb"] = _peak_mb()          # the measured night alone (VmHWM reset before it)
+    out["stage_peak_rss_mb"] = memory.stop()
     led = read_ledger(ws)
     row = led[led["run_date"] == night_day].iloc[-1]
     out["durations"] = json.loads(row["durations_json"])
@@ -224,7 +288,19 @@ def run_case(size: str, logs: Path, work: Path, method: str, seed_epochs: int, r
 
     # 4. references on the same data
     out["bare_read_night_s"] = bare_read_seconds(files[night_day], repeats=5)
-    window = store.read_window(ws, night_day, cfg.window.days)
+    # The window read as the night does it, against a bare pyarrow read of the same stored files (best of
+    # two each, warm page cache on both sides).
+    window_files = [str(ws.partition(ws.store, d) / store.PART_FILE)
+                    for d in store.window_dates(ws, night_day, cfg.window.days)]
+    out["bare_read_window_s"] = bare_read_seconds(window_files, repeats=2)
+    best = float("inf")
+    for _ in range(2):
+        t0 = time.perf_counter()
+        window = store.read_window(ws, night_day, cfg.window.days)
+        best = min(best, time.perf_counter() - t0)
+        if _ == 0:
+            del window
+    out["window_read_s"] = best
     organic = window.loc[window["source"] == "organic", ["user_id", "item_id", "rating"]]
     del window
     m = cfg.model
