@@ -187,12 +187,44 @@ def bare_plain_epoch(organic, dim: int, batch: int, lr: float, weight_decay: flo
     return time.perf_counter() - t0
 
 
+def topn_pruning(ws, version_id: str, window, cfg, users: int = 4000) -> dict:
+    """Exact top-N with and without skipping titles that cannot enter a list, on the night's published
+    candidate and ``users`` of its active members (every k-th, ascending ids): seconds of each (best of
+    two), the share of members x titles skipped, members scored over every title (ties), and whether the
+    lists, scores and ranks are equal."""
+    import numpy as np
+
+    from tasks.engine.scoring import ScoringStats, top_n
+    from tasks.publish.predictions import plan_shards
+    from tasks.publish.versions import load_checkpoint
+    ckpt = load_checkpoint(ws, version_id)
+    shards = plan_shards(ckpt, window, cfg.debias.memory_budget_mb)
+    all_u = np.concatenate([s.users for s in shards])
+    ex_u = np.concatenate([s.exclude_u for s in shards])
+    ex_i = np.concatenate([s.exclude_i for s in shards])
+    pick = all_u[:: max(1, len(all_u) // users)][:users]
+    keep = np.isin(ex_u, pick)
+    ex_u, ex_i = ex_u[keep], ex_i[keep]
+    budget = cfg.debias.memory_budget_mb * 2**20
+    res, secs, stats = {}, {}, ScoringStats()
+    for prune in (False, True, False, True):
+        st = ScoringStats()
+        t0 = time.perf_counter()
+        res[prune] = top_n(ckpt, pick, ex_u, ex_i, cfg.publish.top_n, budget, prune=prune, stats=st)
+        secs[prune] = min(secs.get(prune, float("inf")), time.perf_counter() - t0)
+        if prune:
+            stats = st
+    same = all(np.array_equal(a, b) for a, b in zip(res[True], res[False]))
+    return {"users": int(len(pick)), "titles": len(ckpt.items), "dense_s": secs[False], "pruned_s": secs[True],
+            "skipped_share": stats.skipped_share, "users_full": stats.users_full, "identical": bool(same)}
+
+
 # ---------------------------------------------------------------------------------------------
 # One size, in its own process
 # ---------------------------------------------------------------------------------------------
 
 def run_case(size: str, logs: Path, work: Path, method: str, seed_epochs: int, runner: str,
-             profile: Path | None, shared: bool = False) -> dict:
+             profile: Path | None, shared: bool = False, finetune_epochs: int = 0, cold: bool = False) -> dict:
     os.environ["PREFECT_HOME"] = str(work / "prefect-home")
     os.environ.setdefault("PREFECT_LOGGING_LEVEL", "WARNING")
     os.environ.setdefault("PREFECT_SERVER_ANALYTICS_ENABLED", "false")
@@ -215,13 +247,16 @@ def run_case(size: str, logs: Path, work: Path, method: str, seed_epochs: int, r
     dates = ingest.list_partition_dates(str(logs))
     if len(dates) < 3:
         raise SystemExit(f"{logs}: need at least 3 daily partitions, found {len(dates)}")
-    cfg = Config().updated({"window.days": len(dates), "debias.method": method, "model.threads": 1,
-                            "runtime.runner": runner}).with_overrides(
+    changes = {"window.days": len(dates), "debias.method": method, "model.threads": 1, "runtime.runner": runner}
+    if finetune_epochs:
+        changes["model.finetune_epochs"] = finetune_epochs     # fewer epochs: the night's time, not its memory
+    cfg = Config().updated(changes).with_overrides(
         logs=str(logs), workspace=str(work / "ws"), shared=(work / "shared").as_uri() if shared else "")
     ws = Workspace.at(cfg.paths.workspace)
     files = {d: [str(p) for p in sorted((logs / f"dt={d}").glob("*.parquet"))] for d in dates}
     stored, seed_day, night_day = dates[:-2], dates[-2], dates[-1]
-    out: dict = {"size": size, "method": method, "runner": runner, "days": len(dates), "shared": shared, **out_base}
+    out: dict = {"size": size, "method": method, "runner": runner, "days": len(dates), "shared": shared, **out_base,
+                 "finetune_epochs": cfg.model.finetune_epochs}
 
     # 1. store the first days with the plain ingest functions (what the ingest tasks call)
     pre_files = [f for d in stored for f in files[d]]
@@ -247,11 +282,20 @@ def run_case(size: str, logs: Path, work: Path, method: str, seed_epochs: int, r
     out.update(stored_days=len(stored), stored_rows=rows, stored_read_validate_s=t_read, stored_write_s=t_store)
     out["rss_after_store_mb"] = _rss_mb()
 
-    # 2. seed night: a short cold start so the measured night is a warm fine-tune
+    # 2. seed night: a short cold start so the measured night is a warm fine-tune. With ``cold`` there is
+    # none: the seed day is stored like the others and the measured night is that short cold start.
     seed_cfg = cfg.updated({"model.max_epochs": seed_epochs, "model.patience": seed_epochs + 1})
-    t0 = time.perf_counter()
-    seed = nightly_for(seed_cfg)(cfg=seed_cfg, run_date=seed_day)
-    out["seed_night_s"] = time.perf_counter() - t0
+    if cold:
+        res = ingest.read_partition(str(logs), seed_day, cfg)
+        store.write_partition(ws, seed_day, res.valid_table)
+        del res
+        seed = {"version_id": None, "state": None, "durations": {}}
+        cfg = seed_cfg
+    else:
+        t0 = time.perf_counter()
+        seed = nightly_for(seed_cfg)(cfg=seed_cfg, run_date=seed_day)
+        out["seed_night_s"] = time.perf_counter() - t0
+    out["cold"] = cold
     out["seed_durations"] = seed["durations"]
     out["rss_after_seed_mb"] = _rss_mb()
 
@@ -267,7 +311,7 @@ def run_case(size: str, logs: Path, work: Path, method: str, seed_epochs: int, r
     t0 = time.perf_counter()
     # base_from: warm-start from the seed night even when the gate held it (a 2-epoch cold start may lose
     # to its shadow); the measured night is then the production case, a fine-tune of the previous model.
-    night = nightly_for(cfg)(cfg=cfg, run_date=night_day, base_from=seed["version_id"])
+    night = nightly_for(cfg)(cfg=cfg, run_date=night_day, base_from=seed["version_id"], cold=cold)
     out["night_s"] = time.perf_counter() - t0
     if profiler is not None:
         profiler.stop()
@@ -296,17 +340,19 @@ def run_case(size: str, logs: Path, work: Path, method: str, seed_epochs: int, r
     best = float("inf")
     for _ in range(2):
         t0 = time.perf_counter()
-        window = store.read_window(ws, night_day, cfg.window.days)
+        window = store.read_window(ws, night_day, cfg.window.days, categorical=True)   # as steps.read_window
         best = min(best, time.perf_counter() - t0)
         if _ == 0:
             del window
     out["window_read_s"] = best
+    out["topn"] = topn_pruning(ws, night["version_id"], window, cfg)
     organic = window.loc[window["source"] == "organic", ["user_id", "item_id", "rating"]]
     del window
     m = cfg.model
     out["bare_plain_epoch_s"] = min(bare_plain_epoch(organic, m.dim, m.batch_size, m.learning_rate,
                                                      m.weight_decay, m.seed) for _ in range(2))
     out["organic_ratings"] = len(organic)
+    del organic
     out["budget_mb"] = cfg.debias.memory_budget_mb
     out["peak_rss_mb"] = _rss_mb()
     out["cpu_s"] = time.process_time() - cpu0
@@ -315,7 +361,7 @@ def run_case(size: str, logs: Path, work: Path, method: str, seed_epochs: int, r
 
 
 def _subprocess_case(size: str, logs: Path, method: str, seed_epochs: int, runner: str, profile: bool,
-                     shared: bool = False) -> dict:
+                     shared: bool = False, finetune_epochs: int = 0, cold: bool = False) -> dict:
     with tempfile.TemporaryDirectory(prefix=f"tarewise-bench-night-{size}-") as tmp:
         cmd = [sys.executable, str(Path(__file__).resolve()), "--case", size, "--logs", str(logs), "--work", tmp,
                "--method", method, "--seed-epochs", str(seed_epochs), "--runner", runner]
@@ -323,6 +369,10 @@ def _subprocess_case(size: str, logs: Path, method: str, seed_epochs: int, runne
             cmd += ["--profile"]
         if shared:
             cmd += ["--shared"]
+        if finetune_epochs:
+            cmd += ["--finetune-epochs", str(finetune_epochs)]
+        if cold:
+            cmd += ["--cold"]
         env = {**os.environ, "PYTHONPATH": str(ROOT), "OMP_NUM_THREADS": "1"}
         done = subprocess.run(cmd, capture_output=True, text=True, env=env, cwd=ROOT)
     if done.returncode != 0:
@@ -381,6 +431,50 @@ def render_tables(results: dict, info: dict) -> str:
     return "\n".join(lines) + "\n"
 
 
+def render_scale(results: dict) -> str:
+    """Memory per window rating and the window read against a bare read (rows of runs that measured them)."""
+    rows = [r for r in _order(results) if "night_peak_rss_mb" in r]
+    if not rows:
+        return ""
+    lines = ["Memory of the measured night and its window read. Fixed base = RSS at start (interpreter, torch, "
+             "pandas/pyarrow, Prefect client; no data) + 2 x memory_budget_mb (the two scoring threads' blocks, "
+             "bounded by the config, whatever the size). Per rating = (night peak - base) / window ratings; "
+             "slope = extra peak per extra rating from the previous size:", "",
+             "| size | window ratings | base (MB) | night peak RSS (MB) | peak stage | **bytes / rating above base** "
+             "| slope (bytes / rating) | window read (s) | bare read of the same files (s) | **ratio** |",
+             "|---|" + "---:|" * 9]
+    prev = None
+    for r in rows:
+        n = r["counts"]["window_ratings"]
+        base = r["rss_base_mb"] + 2 * r["budget_mb"]
+        peak = r["night_peak_rss_mb"]
+        stages = r.get("stage_peak_rss_mb", {})
+        top = max(stages, key=stages.get) if stages else ""
+        slope = f"{(peak - prev[1]) * 2**20 / (n - prev[0]):.0f}" if prev and n > prev[0] else ""
+        lines.append(f"| {r.get('label', r['size'])} | {n:,} | {base:.0f} | {peak:,.0f} | {top} "
+                     f"| **{(peak - base) * 2**20 / n:.0f}** | {slope} | {r['window_read_s']:.2f} "
+                     f"| {r['bare_read_window_s']:.2f} | **{r['window_read_s'] / r['bare_read_window_s']:.2f}x** |")
+        prev = (n, peak)
+    tops = [r for r in rows if r.get("topn")]
+    if tops:
+        lines += ["", "Exact top-N that skips titles which cannot enter a list (the night's candidate, a sample of "
+                  "its active members; best of two each):", "",
+                  "| size | members | titles | every title (s) | skipping (s) | **speed-up** | members x titles "
+                  "skipped | members scored over every title | lists identical |", "|---|" + "---:|" * 8]
+        for r in tops:
+            t = r["topn"]
+            lines.append(f"| {r.get('label', r['size'])} | {t['users']:,} | {t['titles']:,} | {t['dense_s']:.2f} "
+                         f"| {t['pruned_s']:.2f} | **{t['dense_s'] / t['pruned_s']:.2f}x** | {t['skipped_share']:.1%} "
+                         f"| {t['users_full']} | {'yes' if t['identical'] else 'NO'} |")
+    lines += ["", "Peak RSS per stage (MB, 20 ms samples):", "",
+              "| size | " + " | ".join(STAGES) + " |", "|---|" + "---:|" * len(STAGES)]
+    for r in rows:
+        st = r.get("stage_peak_rss_mb", {})
+        lines.append(f"| {r.get('label', r['size'])} | " + " | ".join(f"{st.get(x, float('nan')):,.0f}" for x in STAGES)
+                     + " |")
+    return "\n".join(lines) + "\n"
+
+
 def render_shared(results: dict) -> str:
     """The shared copy's cost: the first copy (seed night) and a night's increment (measured night)."""
     lines = ["Shared copy (paths.shared = a file:// folder on the same disk; copy time after the night's "
@@ -427,7 +521,7 @@ def render_plot(results: dict, path: Path) -> None:
 
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--sizes", default="1M,10M", help="comma list of 1M, 10M, 30M")
+    ap.add_argument("--sizes", default="1M,10M", help="comma list of 1M, 10M, 30M, 100M")
     ap.add_argument("--logs", default="/tmp/tarewise-bench-logs", help="where bench/make_logs.py writes the logs")
     ap.add_argument("--method", default="calibrated", help="debias.method of the candidate")
     ap.add_argument("--seed-epochs", type=int, default=2, help="epochs of the cold-start seed night")
@@ -435,13 +529,17 @@ def main() -> None:
     ap.add_argument("--profile", action="store_true", help="write bench/out/profile-<size>.txt (pyinstrument)")
     ap.add_argument("--render", action="store_true", help="only re-render table and plot from nightly.json")
     ap.add_argument("--shared", action="store_true", help="also keep a shared copy (paths.shared) and time it")
+    ap.add_argument("--finetune-epochs", type=int, default=0,
+                    help="model.finetune_epochs of the measured night (0: the config's); memory does not depend on it")
+    ap.add_argument("--cold", action="store_true", help="no seed night: the measured night is a cold start capped "
+                    "at --seed-epochs epochs (for the largest sizes, where a seed night costs as much again)")
     ap.add_argument("--case", help=argparse.SUPPRESS)
     ap.add_argument("--work", help=argparse.SUPPRESS)
     args = ap.parse_args()
     if args.case:
         prof = OUT / f"profile-{args.case}.txt" if args.profile else None
         r = run_case(args.case, Path(args.logs), Path(args.work), args.method, args.seed_epochs, args.runner, prof,
-                     args.shared)
+                     args.shared, args.finetune_epochs, args.cold)
         print(json.dumps(r, default=float))
         return
     sys.path.insert(0, str(ROOT / "bench"))
@@ -457,10 +555,13 @@ def main() -> None:
             print(f"{size}: logs in {folder} ({'reused' if not gen_s else f'generated in {gen_s:.0f} s'})",
                   file=sys.stderr, flush=True)
             t0 = time.perf_counter()
-            r = _subprocess_case(size, folder, args.method, args.seed_epochs, args.runner, args.profile, args.shared)
+            r = _subprocess_case(size, folder, args.method, args.seed_epochs, args.runner, args.profile, args.shared,
+                                 args.finetune_epochs, args.cold)
             r["case_wall_s"] = time.perf_counter() - t0
             key = size if args.method == "calibrated" and args.runner == "thread" else f"{size}-{args.method}-{args.runner}"
             key += "-shared" if args.shared else ""
+            key += f"-cold-{args.seed_epochs}ep" if args.cold else ""
+            key += f"-ft{args.finetune_epochs}" if args.finetune_epochs and not args.cold else ""
             r["label"] = key
             saved["results"][key] = r
             OUT.mkdir(parents=True, exist_ok=True)
@@ -469,7 +570,7 @@ def main() -> None:
                   file=sys.stderr, flush=True)
     main_rows = {k: v for k, v in saved["results"].items()
                  if v["method"] == "calibrated" and v["runner"] == "thread" and not v.get("shared")}
-    text = "# Nightly benchmark\n\n" + render_tables(main_rows, saved["machine"])
+    text = "# Nightly benchmark\n\n" + render_tables(main_rows, saved["machine"]) + "\n" + render_scale(main_rows)
     others = {k: v for k, v in saved["results"].items() if k not in main_rows}
     if others:
         text += "\nOther settings (candidate method / runner as named):\n\n" + render_tables(others, saved["machine"])
