@@ -38,7 +38,7 @@ def check_frame(df: pd.DataFrame | None, name: str, scale: Scale) -> pd.DataFram
     missing = [c for c in REQUIRED if c not in df.columns]
     if missing:
         raise EngineInputError(f"{name} ratings: missing column(s) {missing}")
-    df = df[list(REQUIRED)].copy()
+    df = df[list(REQUIRED)]   # copy-on-write (pandas 3): columns are shared until one is replaced below
     if df["user_id"].isna().any() or df["item_id"].isna().any():
         row = int(np.flatnonzero(df["user_id"].isna().to_numpy() | df["item_id"].isna().to_numpy())[0])
         raise EngineInputError(f"{name} ratings: null id at row {row}")
