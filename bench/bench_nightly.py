@@ -219,9 +219,13 @@ def topn_pruning(ws, version_id: str, window, cfg, users: int = 4000) -> dict:
         secs[prune] = min(secs.get(prune, float("inf")), time.perf_counter() - t0)
         if prune:
             stats = st
-    same = all(np.array_equal(a, b) for a, b in zip(res[True], res[False]))
+    a, b = res[True], res[False]
+    same = all(np.array_equal(a[k], b[k]) for k in (0, 1, 3))
+    scores = np.array_equal(a[2], b[2])
     return {"users": int(len(pick)), "titles": len(ckpt.items), "dense_s": secs[False], "pruned_s": secs[True],
-            "skipped_share": stats.skipped_share, "users_full": stats.users_full, "identical": bool(same)}
+            "skipped_share": stats.skipped_share, "users_full": stats.users_full, "identical": bool(same),
+            "scores_identical": bool(scores),
+            "scores_differing": int((a[2] != b[2]).sum()) if same else None}
 
 
 # ---------------------------------------------------------------------------------------------
@@ -475,12 +479,14 @@ def render_scale(results: dict) -> str:
         lines += ["", "Exact top-N that skips titles which cannot enter a list (the night's candidate, a sample of "
                   "its active members; best of two each):", "",
                   "| size | members | titles | every title (s) | skipping (s) | **speed-up** | members x titles "
-                  "skipped | members scored over every title | lists identical |", "|---|" + "---:|" * 8]
+                  "skipped | members scored over every title | lists identical | scores bit-identical |",
+                  "|---|" + "---:|" * 9]
         for r in tops:
             t = r["topn"]
             lines.append(f"| {r.get('label', r['size'])} | {t['users']:,} | {t['titles']:,} | {t['dense_s']:.2f} "
                          f"| {t['pruned_s']:.2f} | **{t['dense_s'] / t['pruned_s']:.2f}x** | {t['skipped_share']:.1%} "
-                         f"| {t['users_full']} | {'yes' if t['identical'] else 'NO'} |")
+                         f"| {t['users_full']} | {'yes' if t['identical'] else 'NO'} "
+                         f"| {'yes' if t.get('scores_identical') else 'no (%s differ)' % t.get('scores_differing')} |")
     lines += ["", "Peak RSS per stage (MB, 20 ms samples):", "",
               "| size | " + " | ".join(STAGES) + " |", "|---|" + "---:|" * len(STAGES)]
     for r in rows:

@@ -92,7 +92,7 @@ def _mask_excluded(raw: torch.Tensor, u: np.ndarray, cols: np.ndarray | None, ex
 
 
 def top_n(ckpt: Checkpoint, user_idx: np.ndarray, exclude_u: np.ndarray, exclude_i: np.ndarray, n: int,
-          budget_bytes: float = 256 * 2**20, prune: bool = True, stats: ScoringStats | None = None
+          budget_bytes: float = 256 * 2**20, prune: bool = False, stats: ScoringStats | None = None
           ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     """Best ``n`` items per user that the user has not rated.
 
@@ -100,14 +100,17 @@ def top_n(ckpt: Checkpoint, user_idx: np.ndarray, exclude_u: np.ndarray, exclude
     Returns flat arrays ``(user, item, score, rank)`` (indices, scale-units float32, 1-based int32),
     users in the given order, ranks ascending; fewer than ``n`` rows for a user who rated nearly all items.
 
-    ``prune`` (when the model offers :meth:`~tasks.engine.model.Factoriser.ranking_bound_parts`): skip
+    ``prune`` (off; when the model offers :meth:`~tasks.engine.model.Factoriser.ranking_bound_parts`): skip
     titles that cannot enter a user's list. Per block of users, the titles with the highest
     ``b_i + mean|p_u| |q_i|`` are scored first; the ``n``-th best of them is a floor ``theta_u`` for each
     user's list, and a title whose bound ``b_i + |p_u| |q_i|`` stays below every block user's floor is
-    never scored. The scored titles go through the same ``addmm`` and ``topk`` as the dense path, so the
-    lists, scores and ranks are the same; a user whose list has equal scores side by side (where
-    ``topk``'s order among equals could depend on the other columns) or too few candidates is scored
-    over every title, as without pruning. ``stats`` (optional) counts what was skipped.
+    never scored. The scored titles go through the same ``addmm`` and ``topk`` as the dense path; a user
+    whose list has equal scores side by side (where ``topk``'s order among equals could depend on the
+    other columns) or too few candidates is scored over every title. Not on by default: the BLAS may
+    round ``addmm`` over a subset of the columns differently from the whole block (a different kernel
+    for another shape), so a published score can differ in its last bit from today's (seen once in
+    ``bench/fingerprints.py``: one night's predictions of the ``recalibrate`` setting), and today's lists
+    are the contract. ``stats`` (optional) counts what was skipped.
     """
     user_idx = np.asarray(user_idx, np.int64)
     n_items = len(ckpt.items)
