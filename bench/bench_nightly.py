@@ -584,6 +584,8 @@ def main() -> None:
             key += f"-cold-{args.seed_epochs}ep" if args.cold else ""
             key += f"-ft{args.finetune_epochs}" if args.finetune_epochs and not args.cold else ""
             r["label"] = key
+            if store_path.exists():    # another size may have finished meanwhile (runs side by side)
+                saved["results"] = {**json.loads(store_path.read_text())["results"], **saved["results"]}
             saved["results"][key] = r
             OUT.mkdir(parents=True, exist_ok=True)
             store_path.write_text(json.dumps(saved, indent=1, default=float))

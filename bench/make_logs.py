@@ -30,6 +30,7 @@ from tasks.operate.demo_data import TRUTH_DIR, generate  # noqa: E402
 #: name -> (organic ratings over the window, members, titles). Invented sizes within the issue's range
 #: (up to 500k users and 100k items).
 SIZES = {
+    "300k": (300_000, 20_000, 10_000),
     "1M": (1_000_000, 50_000, 20_000),
     "10M": (10_000_000, 200_000, 50_000),
     "30M": (30_000_000, 500_000, 100_000),

@@ -70,8 +70,8 @@ def latest_mask(table: pa.Table) -> np.ndarray:
     the latest ``event_time``; on equal times the later row. Rows must be in tiebreak order
     (e.g. dates ascending, then input order).
 
-    Ids become integer codes and one int64 key per row; a stable sort of the keys finds the keys
-    that repeat (usually few rows), and only those rows are ordered by time. No string sort.
+    Ids become integer codes and one int64 key per row; a hash table finds the keys that repeat
+    (usually few rows), and only those rows are ordered by time. No string sort.
     """
     n = table.num_rows
     keep = np.ones(n, dtype=bool)
@@ -88,15 +88,10 @@ def latest_mask(table: pa.Table) -> np.ndarray:
         new = np.append(True, np.any(triple[1:] != triple[:-1], axis=1))
         key = np.empty(n, np.int64)
         key[order] = np.cumsum(new) - 1
-    order = np.argsort(key, kind="stable")
-    ks = key[order]
-    same = ks[1:] == ks[:-1]
-    if not same.any():
+    # Keys that repeat, found with a hash table (linear; a sort of every key was most of the window read).
+    rows = np.flatnonzero(pd.Series(key, copy=False).duplicated(keep=False).to_numpy())
+    if not len(rows):
         return keep
-    in_run = np.zeros(n, dtype=bool)
-    in_run[1:] |= same
-    in_run[:-1] |= same
-    rows = order[in_run]                              # grouped by key, rows ascending within a key
     times = table["event_time"].cast(pa.int64()).to_numpy(zero_copy_only=False)[rows]
     sub = np.lexsort((rows, times, key[rows]))       # by key, then time, then row: the last one wins
     k = key[rows][sub]
