@@ -31,6 +31,7 @@ from tasks.files import atomic_write_table
 from tasks.workspace import Workspace
 
 PART_FILE = "part-0.parquet"
+_BUCKETS = 4_194_301     # a prime; counting buckets (int64, 32 MB) that pre-filter keys that may repeat
 _PACK_LIMIT = 2**62      # (user, item, source) codes packed into one int64 key below this many combinations
 
 
@@ -88,8 +89,13 @@ def latest_mask(table: pa.Table) -> np.ndarray:
         new = np.append(True, np.any(triple[1:] != triple[:-1], axis=1))
         key = np.empty(n, np.int64)
         key[order] = np.cumsum(new) - 1
-    # Keys that repeat, found with a hash table (linear; a sort of every key was most of the window read).
-    rows = np.flatnonzero(pd.Series(key, copy=False).duplicated(keep=False).to_numpy())
+    # Keys that repeat (linear; a sort of every key was most of the window read): rows whose key shares a
+    # bucket of a counting array with another row are candidates (every repeat is among them, plus a few
+    # collisions), and a hash table settles which candidates' keys repeat.
+    bucket = key % _BUCKETS
+    cand = np.flatnonzero(np.bincount(bucket, minlength=_BUCKETS)[bucket] > 1)
+    del bucket
+    rows = cand[pd.Series(key[cand], copy=False).duplicated(keep=False).to_numpy()]
     if not len(rows):
         return keep
     times = table["event_time"].cast(pa.int64()).to_numpy(zero_copy_only=False)[rows]
