@@ -31,7 +31,7 @@ from tasks.files import atomic_write_table
 from tasks.workspace import Workspace
 
 PART_FILE = "part-0.parquet"
-_BUCKETS = 4_194_301     # a prime; counting buckets (int64, 32 MB) that pre-filter keys that may repeat
+_BUCKETS = 4_194_301     # a prime; counting buckets (int64, 32 MB) that pre-filter keys that may repeat (<= 1M rows)
 _PACK_LIMIT = 2**62      # (user, item, source) codes packed into one int64 key below this many combinations
 
 
@@ -92,9 +92,12 @@ def latest_mask(table: pa.Table) -> np.ndarray:
     # Keys that repeat (linear; a sort of every key was most of the window read): rows whose key shares a
     # bucket of a counting array with another row are candidates (every repeat is among them, plus a few
     # collisions), and a hash table settles which candidates' keys repeat.
-    bucket = key % _BUCKETS
-    cand = np.flatnonzero(np.bincount(bucket, minlength=_BUCKETS)[bucket] > 1)
-    del bucket
+    if 4 * n <= _BUCKETS:       # few rows per bucket: the pre-filter leaves few candidates
+        bucket = key % _BUCKETS
+        cand = np.flatnonzero(np.bincount(bucket, minlength=_BUCKETS)[bucket] > 1)
+        del bucket
+    else:
+        cand = np.arange(n)
     rows = cand[pd.Series(key[cand], copy=False).duplicated(keep=False).to_numpy()]
     if not len(rows):
         return keep
