@@ -54,7 +54,8 @@ def _sorted_dictionary(col: pa.ChunkedArray) -> pa.DictionaryArray:
 
 
 def _codes(col: pa.ChunkedArray) -> np.ndarray:
-    """Integer codes of a text or dictionary column (equal values, equal codes), int64."""
+    """Integer codes of a text or dictionary column (equal values, equal codes): the dictionary's indices
+    (int32 as the window reads them; no copy)."""
     if isinstance(col, pa.ChunkedArray):
         if pa.types.is_string(col.type) and col.nbytes >= 2**31:
             col = col.cast(pa.large_string())     # one array of >2 GiB text needs 64-bit offsets
@@ -63,7 +64,7 @@ def _codes(col: pa.ChunkedArray) -> np.ndarray:
         arr = col
     if not pa.types.is_dictionary(arr.type):
         arr = pc.dictionary_encode(arr)     # one array, one dictionary: codes comparable everywhere
-    return arr.indices.to_numpy(zero_copy_only=False).astype(np.int64)
+    return arr.indices.to_numpy(zero_copy_only=False)
 
 
 def latest_mask(table: pa.Table) -> np.ndarray:
@@ -79,11 +80,17 @@ def latest_mask(table: pa.Table) -> np.ndarray:
     if n < 2:
         return keep
     user, item = _codes(table["user_id"]), _codes(table["item_id"])
-    src = _is_probe(table["source"]).astype(np.int64)
+    src = _is_probe(table["source"])
     n_item = int(item.max()) + 1
     if (int(user.max()) + 1) * n_item * 2 < _PACK_LIMIT:
-        key = (user * n_item + item) * 2 + src
+        # (user * n_item + item) * 2 + src, built in place in one int64 array (8 bytes a row, no temporaries)
+        key = user.astype(np.int64)
+        key *= n_item
+        key += item
+        key *= 2
+        key += src
     else:   # too many distinct ids to pack into one int64: rank the triples instead
+        user, item, src = user.astype(np.int64), item.astype(np.int64), src.astype(np.int64)
         order = np.lexsort((src, item, user))
         triple = np.stack([user[order], item[order], src[order]], axis=1)
         new = np.append(True, np.any(triple[1:] != triple[:-1], axis=1))
@@ -209,7 +216,13 @@ def read_window_table(ws: Workspace, run_date: str, days: int) -> pa.Table:
         table = table.set_column(table.schema.get_field_index(c), c, _sorted_dictionary(table[c]))
     keep = latest_mask(table)
     if not keep.all():
-        table = table.filter(pa.array(keep))
+        # Column by column, each original dropped once filtered: the window is held about once, not twice.
+        mask, names, schema = pa.array(keep), table.column_names, table.schema
+        columns = [table.column(c) for c in names]
+        del table, keep
+        for k in range(len(columns)):
+            columns[k] = columns[k].filter(mask)
+        table = pa.Table.from_arrays(columns, schema=schema)
     return table
 
 
@@ -232,7 +245,8 @@ def read_window(ws: Workspace, run_date: str, days: int, categorical: bool = Fal
     """
     table = read_window_table(ws, run_date, days)
     if categorical:
-        return table.to_pandas()
+        # self_destruct: each Arrow column is released once converted (no second copy of the window).
+        return table.to_pandas(self_destruct=True, split_blocks=True)
     for c in (*ID_COLUMNS, "dt"):
         table = table.set_column(table.schema.get_field_index(c), c, table[c].cast(pa.string()))
     return table.to_pandas()
