@@ -192,42 +192,6 @@ def bare_plain_epoch(organic, dim: int, batch: int, lr: float, weight_decay: flo
     return time.perf_counter() - t0
 
 
-def topn_pruning(ws, version_id: str, window, cfg, users: int = 4000) -> dict:
-    """Exact top-N with and without skipping titles that cannot enter a list, on the night's published
-    candidate and ``users`` of its active members (every k-th, ascending ids): seconds of each (best of
-    two), the share of members x titles skipped, members scored over every title (ties), and whether the
-    lists, scores and ranks are equal."""
-    import numpy as np
-
-    from tasks.engine.scoring import ScoringStats, top_n
-    from tasks.publish.predictions import plan_shards
-    from tasks.publish.versions import load_checkpoint
-    ckpt = load_checkpoint(ws, version_id)
-    shards = plan_shards(ckpt, window, cfg.debias.memory_budget_mb)
-    all_u = np.concatenate([s.users for s in shards])
-    ex_u = np.concatenate([s.exclude_u for s in shards])
-    ex_i = np.concatenate([s.exclude_i for s in shards])
-    pick = all_u[:: max(1, len(all_u) // users)][:users]
-    keep = np.isin(ex_u, pick)
-    ex_u, ex_i = ex_u[keep], ex_i[keep]
-    budget = cfg.debias.memory_budget_mb * 2**20
-    res, secs, stats = {}, {}, ScoringStats()
-    for prune in (False, True, False, True):
-        st = ScoringStats()
-        t0 = time.perf_counter()
-        res[prune] = top_n(ckpt, pick, ex_u, ex_i, cfg.publish.top_n, budget, prune=prune, stats=st)
-        secs[prune] = min(secs.get(prune, float("inf")), time.perf_counter() - t0)
-        if prune:
-            stats = st
-    a, b = res[True], res[False]
-    same = all(np.array_equal(a[k], b[k]) for k in (0, 1, 3))
-    scores = np.array_equal(a[2], b[2])
-    return {"users": int(len(pick)), "titles": len(ckpt.items), "dense_s": secs[False], "pruned_s": secs[True],
-            "skipped_share": stats.skipped_share, "users_full": stats.users_full, "identical": bool(same),
-            "scores_identical": bool(scores),
-            "scores_differing": int((a[2] != b[2]).sum()) if same else None}
-
-
 # ---------------------------------------------------------------------------------------------
 # One size, in its own process
 # ---------------------------------------------------------------------------------------------
@@ -364,7 +328,6 @@ def run_case(size: str, logs: Path, work: Path, method: str, seed_epochs: int, r
         if _ == 0:
             del window
     out["window_read_s"] = best
-    out["topn"] = topn_pruning(ws, night["version_id"], window, cfg)
     organic = window.loc[window["source"] == "organic", ["user_id", "item_id", "rating"]]
     del window
     m = cfg.model
@@ -474,19 +437,6 @@ def render_scale(results: dict) -> str:
                      f"| **{(peak - base) * 2**20 / n:.0f}** | {slope} | {r['window_read_s']:.2f} "
                      f"| {r['bare_read_window_s']:.2f} | **{r['window_read_s'] / r['bare_read_window_s']:.2f}x** |")
         prev = (n, peak)
-    tops = [r for r in rows if r.get("topn")]
-    if tops:
-        lines += ["", "Exact top-N that skips titles which cannot enter a list (the night's candidate, a sample of "
-                  "its active members; best of two each):", "",
-                  "| size | members | titles | every title (s) | skipping (s) | **speed-up** | members x titles "
-                  "skipped | members scored over every title | lists identical | scores bit-identical |",
-                  "|---|" + "---:|" * 9]
-        for r in tops:
-            t = r["topn"]
-            lines.append(f"| {r.get('label', r['size'])} | {t['users']:,} | {t['titles']:,} | {t['dense_s']:.2f} "
-                         f"| {t['pruned_s']:.2f} | **{t['dense_s'] / t['pruned_s']:.2f}x** | {t['skipped_share']:.1%} "
-                         f"| {t['users_full']} | {'yes' if t['identical'] else 'NO'} "
-                         f"| {'yes' if t.get('scores_identical') else 'no (%s differ)' % t.get('scores_differing')} |")
     lines += ["", "Peak RSS per stage (MB, 20 ms samples):", "",
               "| size | " + " | ".join(STAGES) + " |", "|---|" + "---:|" * len(STAGES)]
     for r in rows:

@@ -34,13 +34,6 @@ class Factoriser(nn.Module):
         per-user constant override this to skip adding it to every cell."""
         return self.predict_block(users, items), torch.zeros(len(users))
 
-    def ranking_bound_parts(self) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor] | None:
-        """``(user_factors [n_users, d], item_factors [n_items, d], item_part [n_items])`` with
-        ``ranking_block(u, i)[0] = item_part[i] + <user_factors[u], item_factors[i]>``, so that a title's
-        ranking score is bounded by ``item_part + |p_u| |q_i|`` (Cauchy-Schwarz). None when the model's
-        scores have no such form (then top-N scores every title)."""
-        return None
-
     def regulariser(self, users: torch.Tensor, items: torch.Tensor) -> torch.Tensor:  # -> [B]
         raise NotImplementedError
 
@@ -106,9 +99,6 @@ class BiasedMF(Factoriser):
         ran ~1.9x faster than on the full :meth:`predict_block` (two extra passes over users x items)."""
         p, q = self.user_factors(users), self.item_factors(items)
         return torch.addmm(self.item_bias(items).view(1, -1), p, q.T), self.global_mean + self.user_bias(users).view(-1)
-
-    def ranking_bound_parts(self):
-        return self.user_factors.weight, self.item_factors.weight, self.item_bias.weight.view(-1)
 
     def predict_sampled(self, users, items):
         p = self.user_factors(users)                         # [U, d]
