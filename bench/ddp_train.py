@@ -104,6 +104,43 @@ def predict_round(model: dict, ratings_per_worker: float, workers: int, steps: f
                if workers > 1 else 0.0))
 
 
+def fit_all(paths: list[Path], cores: int, hold_out: str = "") -> str:
+    """One cost model over every saved run (``bench/out/ddp-*.json``): per round,
+    ``c_r x ratings per worker x oversubscription + steps x (c_s + exchange per step)``, with
+    ``exchange per step = a + bytes received / bw``. ``c_r`` (per rating) and ``c_s`` (per step) by least
+    squares on the one-process runs, ``a`` and ``bw`` on the multi-worker runs' measured exchange seconds;
+    then every run's round is predicted and set beside the measurement. Runs of window ``hold_out`` are
+    left out of the fit: they validate it."""
+    import numpy as np
+    runs = []
+    for p in paths:
+        d = json.loads(p.read_text())
+        for r in d["rows"]:
+            runs.append({**r, "n": d["n_ratings"], "size": d["size"], "batch": d["batch"] or 1024})
+    fitted = [r for r in runs if r["size"] != hold_out]
+    one = [r for r in fitted if r["workers"] == 1]
+    A = np.array([[r["n"], r["steps_per_round"]] for r in one], float)
+    y = np.array([r["sec_per_round"] for r in one])
+    (c_r, c_s), *_ = np.linalg.lstsq(A, y, rcond=None) if len(one) > 1 else ((y[0] / one[0]["n"], 0.0),)
+    multi = [r for r in fitted if r["workers"] > 1]
+    A = np.array([[r["steps_per_round"], r["steps_per_round"] * r["bytes_per_step"]] for r in multi], float)
+    y = np.array([r["exchange_s_per_round"] for r in multi])
+    (a, inv_bw), *_ = np.linalg.lstsq(A, y, rcond=None)
+    a, inv_bw = max(float(a), 0.0), max(float(inv_bw), 1e-15)
+    lines = [f"Joint cost model over {len(runs)} runs: compute {c_r * 1e6:.2f} us per rating + {c_s * 1e3:.2f} ms per "
+             f"step; exchange {a * 1e3:.2f} ms per step + bytes at {1 / inv_bw / 1e6:.1f} MB/s.", "",
+             "| window | batch | run | in the fit | s per round measured | modelled | error |",
+             "|---|---:|---|---|---:|---:|---:|"]
+    for r in runs:
+        w, steps = r["workers"], r["steps_per_round"]
+        over = max(1.0, w / cores)
+        m = c_r * r["n"] / w * over + steps * c_s * over + (steps * (a + r["bytes_per_step"] * inv_bw) if w > 1 else 0)
+        lines.append(f"| {r['size']} | {r['batch']} | {NAMES[r['name']]} | {'no' if r['size'] == hold_out else 'yes'} "
+                     f"| {r['sec_per_round']:.1f} | {m:.1f} "
+                     f"| {m / r['sec_per_round'] - 1:+.0%} |")
+    return "\n".join(lines) + "\n"
+
+
 RUNS = {"1": (1, False), "2": (2, False), "2p": (2, True), "4": (4, False), "4p": (4, True)}
 NAMES = {"1": "1 process", "2": "2 workers, same objective", "2p": "2 workers, batch per worker",
          "4": "4 workers, same objective (oversubscribed)", "4p": "4 workers, batch per worker (oversubscribed)"}
@@ -118,7 +155,14 @@ def main() -> None:
     ap.add_argument("--batch", type=int, default=0, help="model.batch_size (0: the config's)")
     ap.add_argument("--runs", default="1,2,2p", help="comma list of " + ",".join(RUNS))
     ap.add_argument("--tag", default="", help="suffix of bench/out/ddp<tag>.json/.md")
+    ap.add_argument("--fit", action="store_true", help="only fit one cost model over bench/out/ddp-*.json")
+    ap.add_argument("--hold-out", default="", help="with --fit: window size whose runs validate the fit")
     args = ap.parse_args()
+    if args.fit:
+        text = fit_all(sorted(OUT.glob("ddp-*.json")), os.cpu_count() or 1, args.hold_out)
+        (OUT / "ddp-model.md").write_text(text)
+        print(text)
+        return
     sys.path.insert(0, str(ROOT / "bench"))
     from make_logs import make_logs
     folder, _ = make_logs(Path(args.logs), args.size)
@@ -145,7 +189,7 @@ def main() -> None:
              f"load {load:.1f} at start)",
              "", "| run | s per round (measured) | modelled | speed-up | steps/s | bytes in per step | collectives "
              "per step | exchange s per round | held-out probe MAE | ratings per worker |",
-             "|---|" + "---:|" * 9 + "---|"]
+             "|---|" + "---:|" * 8 + "---|"]
     for r in rows:
         lines.append(f"| {NAMES[r['name']]} | {r['sec_per_round']:.1f} | {r['modelled_s_per_round']:.1f} "
                      f"| {base / r['sec_per_round']:.2f}x | {r['steps_per_s']:.0f} | {r['bytes_per_step']:,.0f} "
