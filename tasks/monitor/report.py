@@ -38,8 +38,10 @@ from tasks.monitor.alert_history import FINAL, night_alerts, read_history
 from tasks.monitor.alert_rules import KIND_SKEW, WITHDRAWN, metric_band
 from tasks.monitor.metrics_store import read_metrics, row_of
 from tasks.monitor.night_metrics import jsonable
+from tasks.monitor.probe_budget_view import CAUTIONS, chart_probe_budget
 from tasks.monitor.report_charts import (
     both_widths,
+    chart_anchor_trend,
     chart_mae_trend,
     chart_prediction_shift,
     chart_rating_histograms,
@@ -128,6 +130,8 @@ def _trend_frame(series: pd.DataFrame, run_date: str, cfg: Config, alert_dates: 
             "band_median": band.median if band else None, "skew_alert": r["run_date"] in alert_dates,
             **{f"{m}_{s}": _num(r.get(f"{m}_{s}")) for m in MODELS for s in ("mae", "mae_lo", "mae_hi")},
             "pred_psi": _num(r.get("pred_psi")), "probe_coverage": _num(r.get("probe_coverage")),
+            **{k: _num(r.get(k)) for k in ("anchor_mae", "anchor_candidate_mae", "anchor_live_mae", "anchor_margin")},
+            "anchor_version": r.get("anchor_version"),
         })
     return pd.DataFrame(rows)
 
@@ -194,10 +198,13 @@ def build_report(run_date: str, cfg: Config, row: Mapping, series: pd.DataFrame,
             "skew_trend": both_widths(chart_skew_trend, trend, unit),
             "prediction_shift": both_widths(chart_prediction_shift, detail, unit),
             "mae_trend": both_widths(chart_mae_trend, trend, unit),
+            "anchor_trend": both_widths(chart_anchor_trend, trend, unit, cfg.gate.anchor_budget),
+            "probe_budget": both_widths(chart_probe_budget, detail, unit),
         },
         "settings": {"baseline_nights": cfg.drift.baseline_nights, "mad_k": cfg.drift.mad_k,
                      "min_baseline_nights": cfg.drift.min_baseline_nights,
                      "skew_margin": cfg.evaluate.skew_margin, "confidence": cfg.evaluate.confidence,
+                     "anchor_budget": cfg.gate.anchor_budget, "anchor_nights": cfg.gate.anchor_nights,
                      "scale": [cfg.scale.min, cfg.scale.max, cfg.scale.step],
                      "labels": {**cfg.labels.model_dump(), "unit_short": cfg.labels.unit_short}},
     }
@@ -236,6 +243,7 @@ def render_html(report: Mapping) -> str:
         show_reference=any(_num(x) is not None for x in d.get("reference_shares") or []),
         # Attributes, not a dict: a label named like a dict method ("items") must stay the label.
         L=SimpleNamespace(**report["settings"]["labels"]),
+        budget=d.get("probe_budget") or {}, probe_cautions=CAUTIONS,
     )
 
 
