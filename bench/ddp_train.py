@@ -1,18 +1,21 @@
-"""What data-parallel training costs and buys on this machine: 1 process vs 2 workers under torchrun.
+"""What data-parallel training costs and buys on this machine: 1 process vs 2 and 4 workers under torchrun.
 
 Not a test. Takes the 30-day window of the nightly benchmark's invented logs (``bench/make_logs.py``; latest
 rating per user, item and source, as the store keeps it), writes it as one Parquet file, then trains the
-same config three ways, each in fresh processes, and reads seconds per round and held-out probe MAE:
+same config several ways (``--runs``), each in fresh processes, and reads seconds per round, held-out
+probe MAE and what each rank's collectives moved (``tasks/engine/distributed.py``'s meter: calls, bytes
+received, seconds inside them):
 
-* ``single``: ``tasks.engine.trainer.fit`` in one process (via ``torchrun --nproc-per-node 1``, i.e. the
+* ``1``: ``tasks.engine.trainer.fit`` in one process (via ``torchrun --nproc-per-node 1``, i.e. the
   data-parallel trainer with one worker, which reproduces ``fit`` exactly; tests/engine/test_distributed.py);
-* ``2 workers``: ``torchrun --nproc-per-node 2``, the same objective (global batch = ``model.batch_size``);
-* ``2 workers, batch per worker``: each worker takes ``model.batch_size`` ratings per step (half the steps).
+* ``2`` / ``4``: 2 or 4 workers, the same objective (global batch = ``model.batch_size``);
+* ``2p`` / ``4p``: each worker takes ``model.batch_size`` ratings per step (2 or 4 times fewer steps).
 
-    python bench/ddp_train.py --size 1M --epochs 3
+    python bench/ddp_train.py --size 300k --epochs 2 --runs 1,2,2p,4,4p --tag=-300k
+    python bench/ddp_train.py --fit --hold-out 1M      # one cost model over the saved runs
 
-Writes ``bench/out/ddp.md``. One torch thread per process; this machine has 2 cores, so 2 workers is the
-most it can show.
+Writes ``bench/out/ddp<tag>.md`` and ``.json``. One torch thread per process; this machine has 2 cores,
+so 4 workers oversubscribe it (said in the tables).
 """
 
 from __future__ import annotations
