@@ -31,6 +31,7 @@ from tasks.files import atomic_write_table
 from tasks.workspace import Workspace
 
 PART_FILE = "part-0.parquet"
+STORE_DICTIONARY_PAGE = 256 * 2**20    # bytes; a day's distinct ids stay dictionary-encoded (see write_partition)
 _BUCKETS = 4_194_301     # a prime; counting buckets (int64, 32 MB) that pre-filter keys that may repeat (<= 1M rows)
 _PACK_LIMIT = 2**62      # (user, item, source) codes packed into one int64 key below this many combinations
 
@@ -158,7 +159,11 @@ def write_partition(ws: Workspace, run_date: str, valid: pd.DataFrame | pa.Table
     parse_date(run_date)
     table = _to_store_table(valid)
     path = ws.partition(ws.store, run_date) / PART_FILE
-    atomic_write_table(path, table)
+    # One dictionary page per text column, however many distinct ids a day has: with pyarrow's default
+    # (1 MB) a 10M-rating window's days fell back to plain pages part-way, and the window read then
+    # hashed every row's id (reading ten such days with read_dictionary: 0.46 s, with this 0.26 s;
+    # files about 10% larger).
+    atomic_write_table(path, table, dictionary_pagesize_limit=STORE_DICTIONARY_PAGE)
     return {"path": os.fspath(path), "rows": table.num_rows}
 
 
