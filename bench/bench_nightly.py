@@ -57,6 +57,68 @@ def _rss_mb() -> float:
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / (1024 if sys.platform != "darwin" else 2**20)
 
 
+def _rss_now_mb() -> float:
+    with open("/proc/self/statm") as f:
+        return int(f.read().split()[1]) * os.sysconf("SC_PAGE_SIZE") / 2**20
+
+
+class StageMemory:
+    """Peak RSS per stage of the nights run while it is on: a thread samples ``/proc/self/statm`` every
+    20 ms and files each sample under the stage the run is in (the ledger's ``RunRecord.stage`` is
+    wrapped to say which). A sample is a lower bound of the true peak (a spike shorter than 20 ms can be
+    missed); the process's ``ru_maxrss`` is the exact whole-run peak."""
+
+    def __init__(self, progress=None) -> None:
+        import threading
+        from contextlib import contextmanager
+
+        from tasks.ledger import RunRecord
+        self.current, self.peaks, self._stop = "outside", {}, threading.Event()
+        self.progress = progress       # called every 10 s with the stage and peaks so far (a run cut short)
+        original = RunRecord.stage
+        memory = self
+
+        @contextmanager
+        def stage(record, name):
+            before, memory.current = memory.current, name
+            try:
+                with original(record, name):
+                    yield
+            finally:
+                memory.current = before
+        RunRecord.stage = stage
+        self._thread = threading.Thread(target=self._run, daemon=True)
+        self._thread.start()
+
+    def _run(self) -> None:
+        last = time.perf_counter()
+        while not self._stop.wait(0.02):
+            rss = _rss_now_mb()
+            self.peaks[self.current] = max(self.peaks.get(self.current, 0.0), rss)
+            if self.progress is not None and time.perf_counter() - last > 10:
+                last = time.perf_counter()
+                self.progress({"stage": self.current, "stage_peak_rss_mb": dict(self.peaks), "rss_mb": rss})
+
+    def stop(self) -> dict:
+        self._stop.set()
+        self._thread.join()
+        return {k: round(v, 1) for k, v in self.peaks.items()}
+
+
+def _reset_peak() -> None:
+    """Reset this process's peak RSS (Linux: ``echo 5 > /proc/self/clear_refs`` resets VmHWM)."""
+    with open("/proc/self/clear_refs", "w") as f:
+        f.write("5")
+
+
+def _peak_mb() -> float:
+    """Peak RSS since the last :func:`_reset_peak` (VmHWM of /proc/self/status), MB."""
+    for line in Path("/proc/self/status").read_text().splitlines():
+        if line.startswith("VmHWM:"):
+            return int(line.split()[1]) / 1024
+    raise RuntimeError("no VmHWM in /proc/self/status")
+
+
 def machine() -> dict:
     cpu = platform.processor() or platform.machine()
     try:
@@ -135,11 +197,12 @@ def bare_plain_epoch(organic, dim: int, batch: int, lr: float, weight_decay: flo
 # ---------------------------------------------------------------------------------------------
 
 def run_case(size: str, logs: Path, work: Path, method: str, seed_epochs: int, runner: str,
-             profile: Path | None, shared: bool = False) -> dict:
+             profile: Path | None, shared: bool = False, finetune_epochs: int = 0, cold: bool = False) -> dict:
     os.environ["PREFECT_HOME"] = str(work / "prefect-home")
     os.environ.setdefault("PREFECT_LOGGING_LEVEL", "WARNING")
     os.environ.setdefault("PREFECT_SERVER_ANALYTICS_ENABLED", "false")
     os.environ.setdefault("DO_NOT_TRACK", "1")
+    os.environ.setdefault("PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS", "180")   # a loaded, shared machine
     Path(os.environ["PREFECT_HOME"]).mkdir(parents=True, exist_ok=True)
     import torch
 
@@ -151,22 +214,27 @@ def run_case(size: str, logs: Path, work: Path, method: str, seed_epochs: int, r
     from tasks.workspace import Workspace
 
     torch.set_num_threads(1)
+    out_base = {"rss_base_mb": _rss_now_mb()}     # interpreter + torch + pandas/pyarrow + Prefect client, no data
     load_start = os.getloadavg()
     cpu0 = time.process_time()
     dates = ingest.list_partition_dates(str(logs))
     if len(dates) < 3:
         raise SystemExit(f"{logs}: need at least 3 daily partitions, found {len(dates)}")
-    cfg = Config().updated({"window.days": len(dates), "debias.method": method, "model.threads": 1,
-                            "runtime.runner": runner}).with_overrides(
+    changes = {"window.days": len(dates), "debias.method": method, "model.threads": 1, "runtime.runner": runner}
+    if finetune_epochs:
+        changes["model.finetune_epochs"] = finetune_epochs     # fewer epochs: the night's time, not its memory
+    cfg = Config().updated(changes).with_overrides(
         logs=str(logs), workspace=str(work / "ws"), shared=(work / "shared").as_uri() if shared else "")
     ws = Workspace.at(cfg.paths.workspace)
     files = {d: [str(p) for p in sorted((logs / f"dt={d}").glob("*.parquet"))] for d in dates}
     stored, seed_day, night_day = dates[:-2], dates[-2], dates[-1]
-    out: dict = {"size": size, "method": method, "runner": runner, "days": len(dates), "shared": shared}
+    out: dict = {"size": size, "method": method, "runner": runner, "days": len(dates), "shared": shared, **out_base,
+                 "finetune_epochs": cfg.model.finetune_epochs}
 
     # 1. store the first days with the plain ingest functions (what the ingest tasks call)
     pre_files = [f for d in stored for f in files[d]]
-    out["bare_read_stored_s"] = bare_read_seconds(pre_files, repeats=2)
+    # --cold (the largest sizes) stores the days once and skips the ingest ratio's extra passes.
+    out["bare_read_stored_s"] = float("nan") if cold else bare_read_seconds(pre_files, repeats=2)
     t_read = t_store = 0.0
     rows = 0
     for d in stored:
@@ -181,18 +249,30 @@ def run_case(size: str, logs: Path, work: Path, method: str, seed_epochs: int, r
         rows += res.rows_read
     # The bare read is the best of two passes over warm files; read + validate gets the same protocol
     # (a second pass over the same days, nothing written), so first-call costs do not land on one side.
-    t0 = time.perf_counter()
-    for d in stored:
-        ingest.read_partition(str(logs), d, cfg)
-    t_read = min(t_read, time.perf_counter() - t0)
+    if not cold:
+        t0 = time.perf_counter()
+        for d in stored:
+            ingest.read_partition(str(logs), d, cfg)
+        t_read = min(t_read, time.perf_counter() - t0)
     out.update(stored_days=len(stored), stored_rows=rows, stored_read_validate_s=t_read, stored_write_s=t_store)
     out["rss_after_store_mb"] = _rss_mb()
+    OUT.mkdir(parents=True, exist_ok=True)
+    (OUT / f"progress-{size}.json").write_text(json.dumps(out, default=float, indent=1))
 
-    # 2. seed night: a short cold start so the measured night is a warm fine-tune
+    # 2. seed night: a short cold start so the measured night is a warm fine-tune. With ``cold`` there is
+    # none: the seed day is stored like the others and the measured night is that short cold start.
     seed_cfg = cfg.updated({"model.max_epochs": seed_epochs, "model.patience": seed_epochs + 1})
-    t0 = time.perf_counter()
-    seed = nightly_for(seed_cfg)(cfg=seed_cfg, run_date=seed_day)
-    out["seed_night_s"] = time.perf_counter() - t0
+    if cold:
+        res = ingest.read_partition(str(logs), seed_day, cfg)
+        store.write_partition(ws, seed_day, res.valid_table)
+        del res
+        seed = {"version_id": None, "state": None, "durations": {}}
+        cfg = seed_cfg
+    else:
+        t0 = time.perf_counter()
+        seed = nightly_for(seed_cfg)(cfg=seed_cfg, run_date=seed_day)
+        out["seed_night_s"] = time.perf_counter() - t0
+    out["cold"] = cold
     out["seed_durations"] = seed["durations"]
     out["rss_after_seed_mb"] = _rss_mb()
 
@@ -202,15 +282,26 @@ def run_case(size: str, logs: Path, work: Path, method: str, seed_epochs: int, r
         from pyinstrument import Profiler
         profiler = Profiler(interval=0.005)
         profiler.start()
+    _reset_peak()
+    out["rss_before_night_mb"] = _rss_now_mb()
+    started = time.perf_counter()
+
+    def progress(facts: dict) -> None:
+        OUT.mkdir(parents=True, exist_ok=True)
+        (OUT / f"progress-{size}.json").write_text(json.dumps(
+            {**out, **facts, "night_elapsed_s": time.perf_counter() - started}, default=float, indent=1))
+    memory = StageMemory(progress)
     t0 = time.perf_counter()
     # base_from: warm-start from the seed night even when the gate held it (a 2-epoch cold start may lose
     # to its shadow); the measured night is then the production case, a fine-tune of the previous model.
-    night = nightly_for(cfg)(cfg=cfg, run_date=night_day, base_from=seed["version_id"])
+    night = nightly_for(cfg)(cfg=cfg, run_date=night_day, base_from=seed["version_id"], cold=cold)
     out["night_s"] = time.perf_counter() - t0
     if profiler is not None:
         profiler.stop()
         profile.write_text(profiler.output_text(unicode=False, color=False, show_all=False))
     out["rss_after_night_mb"] = _rss_mb()
+    out["night_peak_rss_mb"] = _peak_mb()          # the measured night alone (VmHWM reset before it)
+    out["stage_peak_rss_mb"] = memory.stop()
     led = read_ledger(ws)
     row = led[led["run_date"] == night_day].iloc[-1]
     out["durations"] = json.loads(row["durations_json"])
@@ -224,13 +315,26 @@ def run_case(size: str, logs: Path, work: Path, method: str, seed_epochs: int, r
 
     # 4. references on the same data
     out["bare_read_night_s"] = bare_read_seconds(files[night_day], repeats=5)
-    window = store.read_window(ws, night_day, cfg.window.days)
+    # The window read as the night does it, against a bare pyarrow read of the same stored files (best of
+    # two each, warm page cache on both sides).
+    window_files = [str(ws.partition(ws.store, d) / store.PART_FILE)
+                    for d in store.window_dates(ws, night_day, cfg.window.days)]
+    out["bare_read_window_s"] = bare_read_seconds(window_files, repeats=2)
+    best = float("inf")
+    for _ in range(2):
+        t0 = time.perf_counter()
+        window = store.read_window(ws, night_day, cfg.window.days, categorical=True)   # as steps.read_window
+        best = min(best, time.perf_counter() - t0)
+        if _ == 0:
+            del window
+    out["window_read_s"] = best
     organic = window.loc[window["source"] == "organic", ["user_id", "item_id", "rating"]]
     del window
     m = cfg.model
     out["bare_plain_epoch_s"] = min(bare_plain_epoch(organic, m.dim, m.batch_size, m.learning_rate,
                                                      m.weight_decay, m.seed) for _ in range(2))
     out["organic_ratings"] = len(organic)
+    del organic
     out["budget_mb"] = cfg.debias.memory_budget_mb
     out["peak_rss_mb"] = _rss_mb()
     out["cpu_s"] = time.process_time() - cpu0
@@ -239,7 +343,7 @@ def run_case(size: str, logs: Path, work: Path, method: str, seed_epochs: int, r
 
 
 def _subprocess_case(size: str, logs: Path, method: str, seed_epochs: int, runner: str, profile: bool,
-                     shared: bool = False) -> dict:
+                     shared: bool = False, finetune_epochs: int = 0, cold: bool = False) -> dict:
     with tempfile.TemporaryDirectory(prefix=f"tarewise-bench-night-{size}-") as tmp:
         cmd = [sys.executable, str(Path(__file__).resolve()), "--case", size, "--logs", str(logs), "--work", tmp,
                "--method", method, "--seed-epochs", str(seed_epochs), "--runner", runner]
@@ -247,6 +351,10 @@ def _subprocess_case(size: str, logs: Path, method: str, seed_epochs: int, runne
             cmd += ["--profile"]
         if shared:
             cmd += ["--shared"]
+        if finetune_epochs:
+            cmd += ["--finetune-epochs", str(finetune_epochs)]
+        if cold:
+            cmd += ["--cold"]
         env = {**os.environ, "PYTHONPATH": str(ROOT), "OMP_NUM_THREADS": "1"}
         done = subprocess.run(cmd, capture_output=True, text=True, env=env, cwd=ROOT)
     if done.returncode != 0:
@@ -305,6 +413,39 @@ def render_tables(results: dict, info: dict) -> str:
     return "\n".join(lines) + "\n"
 
 
+def render_scale(results: dict) -> str:
+    """Memory per window rating and the window read against a bare read (rows of runs that measured them)."""
+    rows = [r for r in _order(results) if "night_peak_rss_mb" in r]
+    if not rows:
+        return ""
+    lines = ["Memory of the measured night and its window read. Fixed base = RSS at start (interpreter, torch, "
+             "pandas/pyarrow, Prefect client; no data) + 2 x memory_budget_mb (the two scoring threads' blocks, "
+             "bounded by the config, whatever the size). Per rating = (night peak - base) / window ratings; "
+             "slope = extra peak per extra rating from the previous size:", "",
+             "| size | window ratings | base (MB) | night peak RSS (MB) | peak stage | **bytes / rating above base** "
+             "| slope (bytes / rating) | window read (s) | bare read of the same files (s) | **ratio** |",
+             "|---|" + "---:|" * 9]
+    prev = None
+    for r in rows:
+        n = r["counts"]["window_ratings"]
+        base = r["rss_base_mb"] + 2 * r["budget_mb"]
+        peak = r["night_peak_rss_mb"]
+        stages = r.get("stage_peak_rss_mb", {})
+        top = max(stages, key=stages.get) if stages else ""
+        slope = f"{(peak - prev[1]) * 2**20 / (n - prev[0]):.0f}" if prev and n > prev[0] else ""
+        lines.append(f"| {r.get('label', r['size'])} | {n:,} | {base:.0f} | {peak:,.0f} | {top} "
+                     f"| **{(peak - base) * 2**20 / n:.0f}** | {slope} | {r['window_read_s']:.2f} "
+                     f"| {r['bare_read_window_s']:.2f} | **{r['window_read_s'] / r['bare_read_window_s']:.2f}x** |")
+        prev = (n, peak)
+    lines += ["", "Peak RSS per stage (MB, 20 ms samples):", "",
+              "| size | " + " | ".join(STAGES) + " |", "|---|" + "---:|" * len(STAGES)]
+    for r in rows:
+        st = r.get("stage_peak_rss_mb", {})
+        lines.append(f"| {r.get('label', r['size'])} | " + " | ".join(f"{st.get(x, float('nan')):,.0f}" for x in STAGES)
+                     + " |")
+    return "\n".join(lines) + "\n"
+
+
 def render_shared(results: dict) -> str:
     """The shared copy's cost: the first copy (seed night) and a night's increment (measured night)."""
     lines = ["Shared copy (paths.shared = a file:// folder on the same disk; copy time after the night's "
@@ -351,7 +492,7 @@ def render_plot(results: dict, path: Path) -> None:
 
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--sizes", default="1M,10M", help="comma list of 1M, 10M, 30M")
+    ap.add_argument("--sizes", default="1M,10M", help="comma list of 1M, 10M, 30M, 100M")
     ap.add_argument("--logs", default="/tmp/tarewise-bench-logs", help="where bench/make_logs.py writes the logs")
     ap.add_argument("--method", default="calibrated", help="debias.method of the candidate")
     ap.add_argument("--seed-epochs", type=int, default=2, help="epochs of the cold-start seed night")
@@ -359,13 +500,17 @@ def main() -> None:
     ap.add_argument("--profile", action="store_true", help="write bench/out/profile-<size>.txt (pyinstrument)")
     ap.add_argument("--render", action="store_true", help="only re-render table and plot from nightly.json")
     ap.add_argument("--shared", action="store_true", help="also keep a shared copy (paths.shared) and time it")
+    ap.add_argument("--finetune-epochs", type=int, default=0,
+                    help="model.finetune_epochs of the measured night (0: the config's); memory does not depend on it")
+    ap.add_argument("--cold", action="store_true", help="no seed night: the measured night is a cold start capped "
+                    "at --seed-epochs epochs (for the largest sizes, where a seed night costs as much again)")
     ap.add_argument("--case", help=argparse.SUPPRESS)
     ap.add_argument("--work", help=argparse.SUPPRESS)
     args = ap.parse_args()
     if args.case:
         prof = OUT / f"profile-{args.case}.txt" if args.profile else None
         r = run_case(args.case, Path(args.logs), Path(args.work), args.method, args.seed_epochs, args.runner, prof,
-                     args.shared)
+                     args.shared, args.finetune_epochs, args.cold)
         print(json.dumps(r, default=float))
         return
     sys.path.insert(0, str(ROOT / "bench"))
@@ -381,11 +526,16 @@ def main() -> None:
             print(f"{size}: logs in {folder} ({'reused' if not gen_s else f'generated in {gen_s:.0f} s'})",
                   file=sys.stderr, flush=True)
             t0 = time.perf_counter()
-            r = _subprocess_case(size, folder, args.method, args.seed_epochs, args.runner, args.profile, args.shared)
+            r = _subprocess_case(size, folder, args.method, args.seed_epochs, args.runner, args.profile, args.shared,
+                                 args.finetune_epochs, args.cold)
             r["case_wall_s"] = time.perf_counter() - t0
             key = size if args.method == "calibrated" and args.runner == "thread" else f"{size}-{args.method}-{args.runner}"
             key += "-shared" if args.shared else ""
+            key += f"-cold-{args.seed_epochs}ep" if args.cold else ""
+            key += f"-ft{args.finetune_epochs}" if args.finetune_epochs and not args.cold else ""
             r["label"] = key
+            if store_path.exists():    # another size may have finished meanwhile (runs side by side)
+                saved["results"] = {**json.loads(store_path.read_text())["results"], **saved["results"]}
             saved["results"][key] = r
             OUT.mkdir(parents=True, exist_ok=True)
             store_path.write_text(json.dumps(saved, indent=1, default=float))
@@ -393,7 +543,7 @@ def main() -> None:
                   file=sys.stderr, flush=True)
     main_rows = {k: v for k, v in saved["results"].items()
                  if v["method"] == "calibrated" and v["runner"] == "thread" and not v.get("shared")}
-    text = "# Nightly benchmark\n\n" + render_tables(main_rows, saved["machine"])
+    text = "# Nightly benchmark\n\n" + render_tables(main_rows, saved["machine"]) + "\n" + render_scale(main_rows)
     others = {k: v for k, v in saved["results"].items() if k not in main_rows}
     if others:
         text += "\nOther settings (candidate method / runner as named):\n\n" + render_tables(others, saved["machine"])

@@ -1,4 +1,5 @@
-"""Large invented rating logs for the nightly benchmark: 1M, 10M or 30M organic ratings over 30 days.
+"""Large invented rating logs for the nightly benchmark: 1M, 10M or 30M organic ratings over 30 days
+(and 100M, for the one-machine limit).
 
 Same invented scenario and generator as the demo (:func:`tasks.operate.demo_data.generate`: the library network's
 reading app, lover / hater / random members, Zipf-like title popularity, log-normal member activity,
@@ -29,9 +30,11 @@ from tasks.operate.demo_data import TRUTH_DIR, generate  # noqa: E402
 #: name -> (organic ratings over the window, members, titles). Invented sizes within the issue's range
 #: (up to 500k users and 100k items).
 SIZES = {
+    "300k": (300_000, 20_000, 10_000),
     "1M": (1_000_000, 50_000, 20_000),
     "10M": (10_000_000, 200_000, 50_000),
     "30M": (30_000_000, 500_000, 100_000),
+    "100M": (100_000_000, 900_000, 200_000),
 }
 DAYS = 30
 START = "2026-10-01"

@@ -64,6 +64,7 @@ def atomic_write_json(path: Path, obj: object) -> None:
     atomic_write_bytes(path, (json.dumps(obj, indent=2, sort_keys=True, default=str) + "\n").encode())
 
 
-def atomic_write_table(path: Path, table: pa.Table) -> None:
-    """Replace ``path`` with ``table`` as zstd-compressed Parquet."""
-    atomic_write(path, lambda tmp: pq.write_table(table, tmp, compression="zstd"), suffix=".tmp")
+def atomic_write_table(path: Path, table: pa.Table, **options) -> None:
+    """Replace ``path`` with ``table`` as zstd-compressed Parquet (``options``: more ``pq.write_table``
+    arguments)."""
+    atomic_write(path, lambda tmp: pq.write_table(table, tmp, compression="zstd", **options), suffix=".tmp")

@@ -83,7 +83,8 @@ def quarantine_and_store(cfg: Config, run_date: str, result: ingest.IngestResult
 
 @task(name="read-window", **IO)
 def read_window(cfg: Config, run_date: str) -> pd.DataFrame:
-    return store.read_window(Workspace.at(cfg.paths.workspace), run_date, cfg.window.days)
+    # Ids as categoricals (integer codes + sorted distinct texts): strings only at the edges.
+    return store.read_window(Workspace.at(cfg.paths.workspace), run_date, cfg.window.days, categorical=True)
 
 
 @task(name="load-base", **IO)

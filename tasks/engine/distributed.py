@@ -29,6 +29,7 @@ window). Imports no Prefect and nothing of the pipeline.
 from __future__ import annotations
 
 import hashlib
+import time
 from collections.abc import Callable
 from dataclasses import dataclass
 
@@ -43,6 +44,26 @@ from tasks.engine.settings import Settings
 from tasks.engine.trainer import FitResult, Training
 
 
+@dataclass
+class ExchangeMeter:
+    """What this rank's collectives moved: ``calls``, ``bytes_in`` (bytes this rank received: every
+    rank's padded part of each all_gather, and W x the tensor of each all_reduce, a ring's upper bound
+    counted the same way), ``seconds`` spent inside them (waiting for slower ranks included)."""
+
+    calls: int = 0
+    bytes_in: int = 0
+    seconds: float = 0.0
+
+    def add(self, nbytes: int, seconds: float) -> None:
+        self.calls += 1
+        self.bytes_in += int(nbytes)
+        self.seconds += seconds
+
+
+#: This process's meter (one process is one rank); read by tasks/train/torchrun.py into metrics.json.
+METER = ExchangeMeter()
+
+
 def owner(user_idx: np.ndarray, world: int) -> np.ndarray:
     """Rank that holds each user's ratings: user index mod world size (balanced for many users)."""
     return np.asarray(user_idx, np.int64) % world
@@ -51,6 +72,7 @@ def owner(user_idx: np.ndarray, world: int) -> np.ndarray:
 def all_gather_parts(x: torch.Tensor) -> list[torch.Tensor]:
     """Every rank's ``[R_r, ...]`` tensor, in rank order (ranks may hold different R_r)."""
     world = dist.get_world_size()
+    t0 = time.perf_counter()
     counts = [torch.zeros(1, dtype=torch.int64) for _ in range(world)]
     dist.all_gather(counts, torch.tensor([x.shape[0]], dtype=torch.int64))
     sizes = [int(c.item()) for c in counts]
@@ -58,6 +80,7 @@ def all_gather_parts(x: torch.Tensor) -> list[torch.Tensor]:
     padded[: x.shape[0]] = x
     parts = [torch.empty_like(padded) for _ in range(world)]
     dist.all_gather(parts, padded)
+    METER.add(world * (8 + padded.numel() * padded.element_size()), time.perf_counter() - t0)
     return [p[:n] for p, n in zip(parts, sizes)]
 
 
@@ -122,7 +145,9 @@ class GlooExchange(Exchange):
 
     def sum(self, *values: float) -> list[float]:
         t = torch.tensor(values, dtype=torch.float64)
+        t0 = time.perf_counter()
         dist.all_reduce(t)
+        METER.add(self.world * t.numel() * 8, time.perf_counter() - t0)
         return t.tolist()
 
     def sum_gradients(self, model: torch.nn.Module) -> None:
@@ -143,6 +168,7 @@ class ShardFacts:
     probe_fit: int
     reference_draws: list[int]      # reference users this rank drew, per round
     weights_sha256: str             # of the final model's weights: equal on every rank
+    steps_per_round: int = 0        # mini-batch steps (each with one gradient exchange) per round
 
 
 def fit_distributed(organic: pd.DataFrame, probe: pd.DataFrame | None, settings: Settings,
@@ -167,4 +193,5 @@ def fit_distributed(organic: pd.DataFrame, probe: pd.DataFrame | None, settings:
     for name, value in sorted(training.model.state_dict().items()):
         digest.update(name.encode() + value.detach().contiguous().numpy().tobytes())
     return result, ShardFacts(training.exchange.rank, world, len(training.T_r), len(training.active_users),
-                              len(training.pf_r), training.reference_draws, digest.hexdigest())
+                              len(training.pf_r), training.reference_draws, digest.hexdigest(),
+                              training.n_steps)

@@ -32,7 +32,8 @@ class IdMap:
 
     def extend(self, ids: pd.Series | np.ndarray | list[str]) -> int:
         """Append ids not seen before (sorted); return how many were added."""
-        unique = pd.unique(pd.Series(ids, dtype=object))
+        # Distinct ids first (a categorical's observed categories), then Python strings of those only.
+        unique = pd.unique(ids if isinstance(ids, pd.Series) else pd.Series(ids, dtype=object))
         new = sorted(set(unique) - set(self._index)) if len(self._index) else sorted(set(unique))
         if new:
             self._index = self._index.append(pd.Index(new, dtype=object))

@@ -1,6 +1,6 @@
 """What a training run starts from: checked rating frames, id maps and the model, the squared-error examples.
 
-Rating frames have ``user_id``, ``item_id`` (strings) and ``rating`` (float, on the scale): organic
+Rating frames have ``user_id``, ``item_id`` (strings, or categoricals of strings: integer codes) and ``rating`` (float, on the scale): organic
 ratings (MNAR) and probe ratings (MAR). Everything here is computed the same way by every worker of
 data-parallel training (each reads the whole window), so the workers agree on ids and initial weights.
 """
@@ -26,6 +26,10 @@ class EngineInputError(ValueError):
     """Training data or settings the engine refuses; the message says which frame or key and what is wrong."""
 
 
+def _text_categorical(col: pd.Series) -> bool:
+    return isinstance(col.dtype, pd.CategoricalDtype) and pd.api.types.is_string_dtype(col.cat.categories.dtype)
+
+
 def check_frame(df: pd.DataFrame | None, name: str, scale: Scale) -> pd.DataFrame:
     """``df``'s ``REQUIRED`` columns with string ids and float ratings, index 0..N-1 (None: an empty
     frame). Raises :class:`EngineInputError` naming ``name``, the problem and the first bad row."""
@@ -34,12 +38,13 @@ def check_frame(df: pd.DataFrame | None, name: str, scale: Scale) -> pd.DataFram
     missing = [c for c in REQUIRED if c not in df.columns]
     if missing:
         raise EngineInputError(f"{name} ratings: missing column(s) {missing}")
-    df = df[list(REQUIRED)].copy()
+    df = df[list(REQUIRED)]   # copy-on-write (pandas 3): columns are shared until one is replaced below
     if df["user_id"].isna().any() or df["item_id"].isna().any():
         row = int(np.flatnonzero(df["user_id"].isna().to_numpy() | df["item_id"].isna().to_numpy())[0])
         raise EngineInputError(f"{name} ratings: null id at row {row}")
-    df["user_id"] = df["user_id"].astype(str)
-    df["item_id"] = df["item_id"].astype(str)
+    for c in ("user_id", "item_id"):
+        if not _text_categorical(df[c]):      # categoricals of text stay codes (the window's ids)
+            df[c] = df[c].astype(str)
     r = pd.to_numeric(df["rating"], errors="coerce").to_numpy(dtype=float)
     bad = ~np.isfinite(r)
     if bad.any():

@@ -25,7 +25,7 @@ import torch.distributed as dist
 
 from tasks.config import load_config
 from tasks.engine.checkpoint import Checkpoint
-from tasks.engine.distributed import fit_distributed
+from tasks.engine.distributed import METER, fit_distributed
 from tasks.ingest.store import read_window
 from tasks.train.settings import engine_settings
 from tasks.train.training import split_sources
@@ -64,7 +64,7 @@ def main(argv: list[str] | None = None) -> int:
                                         batch_per_worker=args.batch_per_worker)
         seconds = time.perf_counter() - t0
         shards = [None] * facts.world
-        dist.all_gather_object(shards, facts.__dict__)
+        dist.all_gather_object(shards, {**facts.__dict__, "exchange": METER.__dict__.copy()})
         if facts.rank == 0:
             out = Path(args.out)
             out.mkdir(parents=True, exist_ok=True)

@@ -6,6 +6,7 @@ import datetime as dt
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
@@ -160,10 +161,12 @@ def _reference_latest(df: pd.DataFrame) -> set[tuple]:
     return {(r.user_id, r.item_id, r.source, r.rating, r.event_time) for r in last.itertuples()}
 
 
-@pytest.mark.parametrize("pack_limit", [2**62, 1], ids=["packed-key", "ranked-triples"])
-def test_latest_event_matches_a_pandas_reference(ws: Workspace, monkeypatch, pack_limit: int) -> None:
+@pytest.mark.parametrize("pack_limit,buckets", [(2**62, 4_194_301), (1, 4_194_301), (2**62, 7)],
+                         ids=["packed-key", "ranked-triples", "no-prefilter"])
+def test_latest_event_matches_a_pandas_reference(ws: Workspace, monkeypatch, pack_limit: int, buckets: int) -> None:
     import tasks.ingest.store as store
     monkeypatch.setattr(store, "_PACK_LIMIT", pack_limit)    # 1 forces the path used for huge id spaces
+    monkeypatch.setattr(store, "_BUCKETS", buckets)          # 7: the path of large windows (no counting pre-filter)
     df = _random_ratings(3000, seed=1)
     out = write_partition(ws, "2026-11-01", df)
     assert pq.read_table(out["path"]).num_rows == len(df)
@@ -191,3 +194,47 @@ def test_categorical_window_has_the_same_content(ws: Workspace) -> None:
     assert str(cat["user_id"].dtype) == "category" and str(cat["dt"].dtype) == "category"
     pd.testing.assert_frame_equal(plain, cat.astype({c: plain[c].dtype for c in ("user_id", "item_id",
                                                                                   "source", "dt")}))
+
+
+def _old_read_window(days: list[pd.DataFrame], dates: list[str]) -> pd.DataFrame:
+    """The window as the text-id read computed it before ids became codes (pandas reference): every stored
+    row in date then row order; per (user, item, source) the latest event_time wins, then the later date,
+    then the later row."""
+    rows = pd.concat([d.assign(dt=dt, _day=k, _row=np.arange(len(d))) for k, (d, dt) in enumerate(zip(days, dates))],
+                     ignore_index=True)
+    last = rows.sort_values(["event_time", "_day", "_row"], kind="stable").drop_duplicates(
+        ["user_id", "item_id", "source"], keep="last")
+    return last.sort_values(["_day", "_row"])[[*schemas.RATINGS.names, "dt"]].reset_index(drop=True)
+
+
+def test_window_read_on_codes_equals_the_text_read_on_tricky_cases(ws: Workspace) -> None:
+    """Duplicates within and across days, equal times (later date / later row wins), one pair rated as
+    organic and as probe, ids new on later days, non-ASCII ids (sort order of the dictionary), and store
+    files written three ways: as the store writes them, without Parquet dictionary pages (plain text) and
+    with a dictionary that overflows its page (pyarrow falls back to plain pages mid-column)."""
+    rng = np.random.default_rng(7)
+    ids = ["m1", "m10", "m2", "Ärger", "zoë", "émile", "m1 ", "日本"]
+    days, dates = [], ["2026-11-01", "2026-11-02", "2026-11-03"]
+    for k, d in enumerate(dates):
+        n = 400
+        users = rng.choice(ids[:3 + 2 * k], n)             # later days bring new ids
+        items = rng.choice([f"t{j}" for j in range(5 + 3 * k)] + ["Ω"], n)
+        hours = rng.integers(0, 3, n)                       # few distinct times: many equal-time ties
+        df = frame([(u, i, float(rng.integers(1, 6)), f"2026-11-0{1 + (k if h else 0)}T0{h}:00:00",
+                     "probe" if rng.random() < 0.2 else "organic") for u, i, h in zip(users, items, hours)])
+        days.append(df)
+    write_partition(ws, dates[0], days[0])
+    for d, df, kwargs in ((dates[1], days[1], {"use_dictionary": False}),
+                          (dates[2], days[2], {"dictionary_pagesize_limit": 16, "data_page_size": 64})):
+        table = pa.Table.from_pandas(df[schemas.STORE.names], preserve_index=False).cast(schemas.STORE)
+        (ws.store / f"dt={d}").mkdir(parents=True)
+        pq.write_table(table, ws.store / f"dt={d}" / "part-0.parquet", **kwargs)
+    want = _old_read_window(days, dates)
+    got = read_window(ws, dates[-1], 3)
+    pd.testing.assert_frame_equal(got, want.astype({c: got[c].dtype for c in want.columns}))
+    cat = read_window(ws, dates[-1], 3, categorical=True)
+    for c in ("user_id", "item_id"):
+        cats = list(cat[c].cat.categories)
+        assert cats == sorted(cats)                         # code order is text order (Python's sort)
+        assert set(cats) == set(want[c])
+    assert cat["user_id"].astype(str).tolist() == want["user_id"].tolist()
