@@ -1,0 +1,305 @@
+"""Long-run check: does the nightly chain (warm-started night after night) keep up with a fresh fit?
+
+Data: bench/long_run_data.py (an InstEval-derived world and the bfi world, spread over daily partitions).
+Everything runs through the real command line (``python -m flows.cli``), as a user would:
+
+* **chain**: ``tarewise backfill --live each`` over days 1..N, so every night warm-starts from the live
+  version and the gate decides; the live version is scored after each checkpoint night (``--at``);
+* **cold**: the chain's store copied into a fresh workspace, then ``tarewise run --cold`` on the checkpoint
+  date (the same window, trained from scratch), for the default and ``plain``; at the last checkpoint also
+  for every other method (``--methods``);
+* **oracle**: a fresh workspace whose logs are one partition holding a uniform sample of cells as large as
+  the organic log so far, plus the same probe ratings; ``run --cold`` with ``debias.method = "plain"``.
+
+Each version is scored on the hidden MAR test with ``tarewise score --version``. Gap closed =
+``(MAE_plain - MAE) / (MAE_plain - MAE_oracle)`` per seed and night (plain = the cold plain fit), then
+mean ± std over seeds. Writes ``bench/out/long_run_<dataset>.md`` (+ ``.csv``).
+
+Usage::
+
+    python bench/long_run.py --dataset insteval --preset full     # 60 days, nights 30 and 60, 3 seeds
+    python bench/long_run.py --dataset bfi --preset full
+    python bench/long_run.py --dataset insteval --preset tiny     # seconds; what the test runs
+    python bench/long_run.py --dataset insteval --chains default,model.refit_every=7 --methods none
+
+Reproducible: same flags give identical numbers (``model.threads = 1``, seeded draws).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import shutil
+import subprocess
+import sys
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pyarrow.parquet as pq
+
+ROOT = Path(__file__).resolve().parents[1]
+if str(ROOT) not in sys.path:
+    sys.path.insert(0, str(ROOT))
+
+from bench.long_run_data import (World, bfi_world, insteval_truth, insteval_world, write_logs,  # noqa: E402
+                                 write_oracle_logs, write_test)
+from bench.open_data import GROUPS  # noqa: E402
+
+OUT = ROOT / "bench" / "out"
+
+
+@dataclass(frozen=True)
+class Preset:
+    days: int
+    at: tuple[int, ...]
+    seeds: int
+    members: int = 2000          # InstEval subset
+    titles: int = 500
+    test_cells: int = 20_000
+    organic_share: float = 0.03
+    bfi_kwargs: dict = field(default_factory=dict)
+    config: dict = field(default_factory=dict)
+
+
+PRESETS = {
+    "full": Preset(days=60, at=(30, 60), seeds=3),
+    "tiny": Preset(days=6, at=(3, 6), seeds=1, members=150, titles=60, test_cells=1500, organic_share=0.08,
+                   config={"model.max_epochs": 8, "model.finetune_epochs": 3, "debias.per_user_min_probes": 10}),
+}
+
+#: Methods run cold at the last checkpoint besides default and plain: label -> config overrides.
+METHODS: dict[str, dict] = {
+    "per_user skew_offset": {"debias.per_user_design": "skew_offset"},
+    "per_user offset": {"debias.per_user_design": "offset"},
+    "per_user + ips": {"debias.combine_with": "ips"},
+    "recalibrate": {"debias.method": "recalibrate"},
+    "ips": {"debias.method": "ips"},
+    "probe_upweight": {"debias.method": "probe_upweight"},
+    "calibrated λ5 + probe ECDF": {"debias.method": "calibrated", "debias.calibration_weight": 5.0,
+                                    "debias.probe_target_weight": 1.0},
+}
+
+
+# ---------------------------------------------------------------------------------------------------
+# the command line, as a user runs it
+# ---------------------------------------------------------------------------------------------------
+def toml_value(v) -> str:
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, str):
+        return json.dumps(v)
+    return repr(v)
+
+
+def write_config(path: Path, settings: dict) -> Path:
+    """A TOML config from dotted keys (``{"model.seed": 1, ...}``)."""
+    sections: dict[str, dict] = {}
+    for key, value in settings.items():
+        section, _, name = key.partition(".")
+        sections.setdefault(section, {})[name] = value
+    text = "\n".join(f"[{s}]\n" + "\n".join(f"{k} = {toml_value(v)}" for k, v in kv.items()) + "\n"
+                     for s, kv in sections.items())
+    path.parent.mkdir(parents=True, exist_ok=True)
+    path.write_text(text, encoding="utf-8")
+    return path
+
+
+def cli(*args: str, log: Path) -> float:
+    """Run ``python -m flows.cli args``; raise with its output on failure. Returns wall seconds."""
+    env = {**os.environ, "PYTHONPATH": str(ROOT)}
+    t0 = time.perf_counter()
+    proc = subprocess.run([sys.executable, "-m", "flows.cli", *args], cwd=ROOT, env=env, capture_output=True,
+                          text=True)
+    with log.open("a", encoding="utf-8") as fh:
+        fh.write(f"$ tarewise {' '.join(args)}\n{proc.stdout}{proc.stderr}\n")
+    if proc.returncode != 0:
+        raise RuntimeError(f"tarewise {' '.join(args)} failed ({proc.returncode}):\n{proc.stdout}\n{proc.stderr}")
+    return time.perf_counter() - t0
+
+
+def live(ws: Path) -> str:
+    return json.loads((ws / "live.json").read_text())["version_id"]
+
+
+def ledger(ws: Path) -> pd.DataFrame:
+    return pq.read_table(ws / "ledger" / "runs.parquet").to_pandas()
+
+
+def score(ws: Path, version: str, world: World, test: Path, cfg: Path, log: Path) -> dict:
+    """MAE overall and per group of ``version`` on the hidden test."""
+    out = ws.parent / f"scores-{ws.name}-{version}.parquet"
+    cli("score", "--pairs", str(test), "--out", str(out), "--version", version, "--config", str(cfg),
+        "--workspace", str(ws), log=log)
+    s = pq.read_table(out).to_pandas()
+    scn = world.scenario
+    err = np.abs(s["score"].to_numpy(float) - scn.test_rating)
+    row = {"mae": float(err.mean()), "unknown_share": float((s["fallback"] != "").mean())}
+    for g in GROUPS:
+        row[f"mae_{g}"] = float(err[scn.test_group == g].mean())
+    return row
+
+
+# ---------------------------------------------------------------------------------------------------
+# one seed
+# ---------------------------------------------------------------------------------------------------
+def base_settings(world: World, seed: int, logs: Path, preset: Preset) -> dict:
+    return {"paths.logs": str(logs), "scale.min": world.scale[0], "scale.max": world.scale[1],
+            "window.days": world.days + 1, "model.seed": seed, "model.threads": 1, "evaluate.bootstrap": 50,
+            "publish.top_n": 5, "runtime.workers": 1, "runtime.min_free_mb": 0, **preset.config}
+
+
+def parse_chain(spec: str) -> tuple[str, dict]:
+    """``"default"`` or ``"key=value;key=value"`` -> (label, overrides)."""
+    if spec == "default":
+        return spec, {}
+    over = {}
+    for part in spec.split(";"):
+        k, _, v = part.partition("=")
+        try:
+            over[k.strip()] = json.loads(v)
+        except json.JSONDecodeError:
+            over[k.strip()] = v.strip()
+    return spec, over
+
+
+def cold_run(label: str, over: dict, store_from: Path | None, logs: Path, day: int, world: World, base: dict,
+             work: Path, test: Path, log: Path) -> dict:
+    """A fresh workspace (with ``store_from``'s store, when given), ``run --cold`` on ``day``, scored."""
+    ws = work / f"cold-{day}-{len(list(work.glob(f'cold-{day}-*')))}"
+    if store_from is not None:
+        shutil.copytree(store_from / "store", ws / "store")
+    cfg = write_config(ws.parent / f"{ws.name}.toml", {**base, "paths.logs": str(logs), **over})
+    secs = cli("run", "--cold", "--date", world.date(day), "--config", str(cfg), "--workspace", str(ws), log=log)
+    return {"what": label, "night": day, "seconds": secs, **score(ws, live(ws), world, test, cfg, log)}
+
+
+def run_seed(dataset: str, seed: int, preset: Preset, chains: list[str], methods: dict[str, dict], work: Path,
+             say=print, truth: np.ndarray | None = None) -> tuple[list[dict], dict]:
+    """Every row (chain / cold / plain / oracle per checkpoint night) for one seed, and chain facts."""
+    if dataset == "insteval":
+        world = insteval_world(seed, preset.days, preset.members, preset.titles, preset.test_cells,
+                               preset.organic_share, truth=truth)
+    else:
+        world = bfi_world(seed, preset.days, **preset.bfi_kwargs)
+    work = work / f"{dataset}-s{seed}"
+    shutil.rmtree(work, ignore_errors=True)
+    logs, test, log = work / "logs", work / "test.parquet", work / "cli.log"
+    work.mkdir(parents=True)
+    write_logs(world, logs)
+    write_test(world, test)
+    base = base_settings(world, seed, logs, preset)
+    rows: list[dict] = []
+    facts: dict = {"world": {"organic": len(world.scenario.organic), "probe": len(world.scenario.probe),
+                             "test": len(world.scenario.test_rating),
+                             "organic_mean": float(world.scenario.organic["rating"].mean()),
+                             "test_mean": float(world.scenario.test_rating.mean())}}
+    for c, spec in enumerate(chains):
+        label, over = parse_chain(spec)
+        ws = work / f"chain{c}"
+        cfg = write_config(work / f"chain{c}.toml", {**base, **over})
+        start = 1
+        for day in preset.at:
+            secs = cli("backfill", "--start", world.date(start), "--end", world.date(day), "--live", "each",
+                       "--config", str(cfg), "--workspace", str(ws), log=log)
+            r = {"what": f"chain: {label}", "night": day, "seconds": secs / (day - start + 1),
+                 **score(ws, live(ws), world, test, cfg, log)}
+            rows.append(r)
+            say(f"{dataset} seed {seed} night {day} chain {label}: MAE {r['mae']:.4f} ({r['seconds']:.1f} s/night)")
+            if c == 0:
+                for m_label, m_over in (("cold: default", {}), ("plain", {"debias.method": "plain"}),
+                                        *((f"cold: {k}", v) for k, v in methods.items() if day == preset.at[-1])):
+                    rows.append(cold_run(m_label, m_over, ws, logs, day, world, base, work, test, log))
+                    say(f"{dataset} seed {seed} night {day} {m_label}: MAE {rows[-1]['mae']:.4f}")
+                olog = work / f"oracle-logs-{day}"
+                write_oracle_logs(world, olog, day)
+                rows.append(cold_run("oracle", {"debias.method": "plain"}, None, olog, day, world, base, work, test,
+                                     log))
+                say(f"{dataset} seed {seed} night {day} oracle: MAE {rows[-1]['mae']:.4f}")
+            start = day + 1
+        lg = ledger(ws)
+        facts[f"chain: {label}"] = {
+            "nights": int((lg["kind"] == "backfill").sum()),
+            "done": int(((lg["kind"] == "backfill") & (lg["status"] == "done")).sum()),
+            "went_live": int(((lg["kind"] == "backfill") & (lg["state"] == "live")).sum()),
+            "held": int(((lg["kind"] == "backfill") & (lg["state"] == "held")).sum()),
+        }
+    for r in rows:
+        r["seed"] = seed
+    return rows, facts
+
+
+def add_gap(df: pd.DataFrame) -> pd.DataFrame:
+    ref = df[df["what"].isin(["plain", "oracle"])].pivot_table(index=["seed", "night"], columns="what",
+                                                                 values="mae")
+    p = ref["plain"].reindex(list(zip(df["seed"], df["night"]))).to_numpy()
+    o = ref["oracle"].reindex(list(zip(df["seed"], df["night"]))).to_numpy()
+    df["gap_closed"] = (p - df["mae"].to_numpy()) / (p - o)
+    return df
+
+
+def _pm(v: pd.Series, pct: bool = False) -> str:
+    x = v.to_numpy(float) * (100 if pct else 1)
+    sd = float(np.std(x, ddof=1)) if len(x) > 1 else 0.0
+    return f"{x.mean():.1f} ± {sd:.1f}%" if pct else f"{x.mean():.3f} ± {sd:.3f}"
+
+
+def table(df: pd.DataFrame, dataset: str, preset: str, facts: list[dict]) -> str:
+    seeds = sorted(df["seed"].unique())
+    lines = [f"### Long run: {dataset}, preset {preset}, {len(seeds)} seed(s) ({', '.join(map(str, seeds))})", "",
+             "MAE on the hidden MAR test (mean ± std over seeds); gap closed = (plain − m) / (plain − oracle) "
+             "with plain and oracle fitted cold on the same night's window. `chain` = the live version after "
+             "`tarewise backfill --live each` over every night so far; `cold` = `tarewise run --cold` on the "
+             "same store and date; s/night = wall seconds per night of the command (shared 2-core machine).", "",
+             "| night | what ran | MAE | gap closed | " + " | ".join(f"MAE {g}" for g in GROUPS) + " | s/night |",
+             "|---|---|---|---|" + "---|" * len(GROUPS) + "---|"]
+    for night in sorted(df["night"].unique()):
+        d = df[df["night"] == night]
+        for what in dict.fromkeys(d["what"]):
+            x = d[d["what"] == what]
+            lines.append(f"| {night} | {what} | {_pm(x['mae'])} | {_pm(x['gap_closed'], True)} | "
+                         + " | ".join(_pm(x[f"mae_{g}"]) for g in GROUPS) + f" | {x['seconds'].mean():.1f} |")
+    lines += ["", "Chain facts per seed: " + "; ".join(json.dumps(f, sort_keys=True) for f in facts), ""]
+    return "\n".join(lines)
+
+
+def main(argv: list[str] | None = None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    ap.add_argument("--dataset", choices=("insteval", "bfi"), default="insteval")
+    ap.add_argument("--preset", choices=tuple(PRESETS), default="full")
+    ap.add_argument("--seeds", type=int, default=None, help="override the preset's seed count")
+    ap.add_argument("--seed-list", default="", help="comma-separated seeds (overrides --seeds)")
+    ap.add_argument("--chains", default="default",
+                    help="'|'-separated chains: 'default' or 'key=value;key=value' config overrides")
+    ap.add_argument("--methods", default="all", help="'all', 'none' or comma-separated labels of METHODS")
+    ap.add_argument("--work", default="", help="scratch folder (default: a temporary one under /tmp)")
+    ap.add_argument("--out", default="")
+    args = ap.parse_args(argv)
+    preset = PRESETS[args.preset]
+    seeds = ([int(s) for s in args.seed_list.split(",")] if args.seed_list
+             else list(range(args.seeds if args.seeds is not None else preset.seeds)))
+    methods = (METHODS if args.methods == "all" else {} if args.methods == "none"
+               else {k: METHODS[k] for k in args.methods.split(",")})
+    chains = args.chains.split("|")
+    work = Path(args.work or f"/tmp/tarewise-long-run-{os.getpid()}")
+    truth = insteval_truth(preset.members, preset.titles) if args.dataset == "insteval" else None
+    rows, facts = [], []
+    for seed in seeds:
+        r, f = run_seed(args.dataset, seed, preset, chains, methods, work, truth=truth)
+        rows += r
+        facts.append({"seed": seed, **f})
+    df = add_gap(pd.DataFrame(rows))
+    text = table(df, args.dataset, args.preset, facts)
+    print(text)
+    out = Path(args.out) if args.out else OUT / f"long_run_{args.dataset}_{args.preset}.md"
+    out.parent.mkdir(parents=True, exist_ok=True)
+    out.write_text(text, encoding="utf-8")
+    df.to_csv(out.with_suffix(".csv"), index=False)
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
