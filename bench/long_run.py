@@ -178,7 +178,7 @@ def cold_run(label: str, over: dict, store_from: Path | None, logs: Path, day: i
 
 
 def run_seed(dataset: str, seed: int, preset: Preset, chains: list[str], methods: dict[str, dict], work: Path,
-             say=print, truth: np.ndarray | None = None) -> tuple[list[dict], dict]:
+             say=print, truth: np.ndarray | None = None, partial: Path | None = None) -> tuple[list[dict], dict]:
     """Every row (chain / cold / plain / oracle per checkpoint night) for one seed, and chain facts."""
     if dataset == "insteval":
         world = insteval_world(seed, preset.days, preset.members, preset.titles, preset.test_cells,
@@ -197,6 +197,12 @@ def run_seed(dataset: str, seed: int, preset: Preset, chains: list[str], methods
                              "test": len(world.scenario.test_rating),
                              "organic_mean": float(world.scenario.organic["rating"].mean()),
                              "test_mean": float(world.scenario.test_rating.mean())}}
+    def keep(row: dict) -> None:
+        row["seed"] = seed
+        rows.append(row)
+        if partial is not None:     # rows so far, so a long run can be read before it ends
+            pd.DataFrame(rows).to_csv(partial, index=False)
+
     for c, spec in enumerate(chains):
         label, over = parse_chain(spec)
         ws = work / f"chain{c}"
@@ -207,16 +213,16 @@ def run_seed(dataset: str, seed: int, preset: Preset, chains: list[str], methods
                        "--config", str(cfg), "--workspace", str(ws), log=log)
             r = {"what": f"chain: {label}", "night": day, "seconds": secs / (day - start + 1),
                  **score(ws, live(ws), world, test, cfg, log)}
-            rows.append(r)
+            keep(r)
             say(f"{dataset} seed {seed} night {day} chain {label}: MAE {r['mae']:.4f} ({r['seconds']:.1f} s/night)")
             if c == 0:
                 for m_label, m_over in (("cold: default", {}), ("plain", {"debias.method": "plain"}),
                                         *((f"cold: {k}", v) for k, v in methods.items() if day == preset.at[-1])):
-                    rows.append(cold_run(m_label, m_over, ws, logs, day, world, base, work, test, log))
+                    keep(cold_run(m_label, m_over, ws, logs, day, world, base, work, test, log))
                     say(f"{dataset} seed {seed} night {day} {m_label}: MAE {rows[-1]['mae']:.4f}")
                 olog = work / f"oracle-logs-{day}"
                 write_oracle_logs(world, olog, day)
-                rows.append(cold_run("oracle", {"debias.method": "plain"}, None, olog, day, world, base, work, test,
+                keep(cold_run("oracle", {"debias.method": "plain"}, None, olog, day, world, base, work, test,
                                      log))
                 say(f"{dataset} seed {seed} night {day} oracle: MAE {rows[-1]['mae']:.4f}")
             start = day + 1
@@ -227,8 +233,6 @@ def run_seed(dataset: str, seed: int, preset: Preset, chains: list[str], methods
             "went_live": int(((lg["kind"] == "backfill") & (lg["state"] == "live")).sum()),
             "held": int(((lg["kind"] == "backfill") & (lg["state"] == "held")).sum()),
         }
-    for r in rows:
-        r["seed"] = seed
     return rows, facts
 
 
@@ -288,7 +292,8 @@ def main(argv: list[str] | None = None) -> int:
     truth = insteval_truth(preset.members, preset.titles) if args.dataset == "insteval" else None
     rows, facts = [], []
     for seed in seeds:
-        r, f = run_seed(args.dataset, seed, preset, chains, methods, work, truth=truth)
+        r, f = run_seed(args.dataset, seed, preset, chains, methods, work, truth=truth,
+                        partial=work / f"partial-{args.dataset}-s{seed}.csv")
         rows += r
         facts.append({"seed": seed, **f})
     df = add_gap(pd.DataFrame(rows))

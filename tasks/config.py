@@ -142,6 +142,12 @@ class ModelConfig(_Section):
         "corrected", description="What early stopping reads on the probe fitting split: 'corrected' = the MAE of "
         "the served score (the method's post-hoc correction refitted for each round's weights; methods without "
         "one read the raw model); 'raw' = the factoriser's own MAE, before any correction.")
+    refit_every: int = Field(0, ge=0, le=10_000, description="Train from scratch (cold) instead of warm-starting "
+                             "when the base has this many warm-started nights behind it since its last cold fit "
+                             "(0 = never on a schedule).")
+    cold_candidate: bool = Field(False, description="On a warm-started night also train a cold model on the same "
+                                 "window and keep whichever has the lower probe-fit MAE of the served score (the "
+                                 "fitting split, never the gate's held-out one); costs a cold fit every night.")
     keep_base: bool = Field(True, description="A warm start scores its base as round 0 for early stopping, "
                             "so a night whose rounds are all worse keeps the base's weights (new rows as "
                             "initialised) instead of taking at least one round.")
