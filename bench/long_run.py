@@ -108,16 +108,30 @@ def write_config(path: Path, settings: dict) -> Path:
     return path
 
 
+#: Run the command line in this process (typer's CliRunner on ``flows.cli.app``, the same commands) instead
+#: of one ``python -m flows.cli`` process per command: the test does, to share its Prefect API.
+IN_PROCESS = {"on": False}
+
+
 def cli(*args: str, log: Path) -> float:
-    """Run ``python -m flows.cli args``; raise with its output on failure. Returns wall seconds."""
-    env = {**os.environ, "PYTHONPATH": str(ROOT)}
+    """Run ``tarewise args`` (``python -m flows.cli``); raise with its output on failure. Returns wall seconds."""
     t0 = time.perf_counter()
-    proc = subprocess.run([sys.executable, "-m", "flows.cli", *args], cwd=ROOT, env=env, capture_output=True,
-                          text=True)
+    if IN_PROCESS["on"]:
+        from typer.testing import CliRunner
+
+        from flows.cli import app
+
+        res = CliRunner().invoke(app, list(args))
+        code, output = res.exit_code, res.output + (repr(res.exception) if res.exception else "")
+    else:
+        env = {**os.environ, "PYTHONPATH": str(ROOT)}
+        proc = subprocess.run([sys.executable, "-m", "flows.cli", *args], cwd=ROOT, env=env, capture_output=True,
+                              text=True)
+        code, output = proc.returncode, proc.stdout + proc.stderr
     with log.open("a", encoding="utf-8") as fh:
-        fh.write(f"$ tarewise {' '.join(args)}\n{proc.stdout}{proc.stderr}\n")
-    if proc.returncode != 0:
-        raise RuntimeError(f"tarewise {' '.join(args)} failed ({proc.returncode}):\n{proc.stdout}\n{proc.stderr}")
+        fh.write(f"$ tarewise {' '.join(args)}\n{output}\n")
+    if code != 0:
+        raise RuntimeError(f"tarewise {' '.join(args)} failed ({code}):\n{output}")
     return time.perf_counter() - t0
 
 
