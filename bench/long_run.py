@@ -284,6 +284,14 @@ def table(df: pd.DataFrame, dataset: str, preset: str, facts: list[dict]) -> str
     return "\n".join(lines)
 
 
+def _facts(csv: Path) -> dict:
+    """A run's chain facts: its ``.facts.json``, else the facts line of its ``.md`` table."""
+    if csv.with_suffix(".facts.json").exists():
+        return json.loads(csv.with_suffix(".facts.json").read_text())
+    line = next(x for x in csv.with_suffix(".md").read_text().splitlines() if x.startswith("Chain facts per seed: "))
+    return json.loads(line.removeprefix("Chain facts per seed: "))
+
+
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("--dataset", choices=("insteval", "bfi"), default="insteval")
@@ -295,7 +303,20 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--methods", default="all", help="'all', 'none' or comma-separated labels of METHODS")
     ap.add_argument("--work", default="", help="scratch folder (default: a temporary one under /tmp)")
     ap.add_argument("--out", default="")
+    ap.add_argument("--merge", default="", help="comma-separated .csv files of earlier runs (one per seed, each "
+                    "with its .facts.json): write their combined table instead of running")
     args = ap.parse_args(argv)
+    out = Path(args.out) if args.out else OUT / f"long_run_{args.dataset}_{args.preset}.md"
+    out.parent.mkdir(parents=True, exist_ok=True)
+    if args.merge:
+        files = [Path(f) for f in args.merge.split(",")]
+        df = add_gap(pd.concat([pd.read_csv(f) for f in files], ignore_index=True))
+        facts = [_facts(f) for f in files]
+        text = table(df, args.dataset, args.preset, facts)
+        out.write_text(text, encoding="utf-8")
+        df.to_csv(out.with_suffix(".csv"), index=False)
+        print(text)
+        return 0
     preset = PRESETS[args.preset]
     seeds = ([int(s) for s in args.seed_list.split(",")] if args.seed_list
              else list(range(args.seeds if args.seeds is not None else preset.seeds)))
@@ -313,10 +334,9 @@ def main(argv: list[str] | None = None) -> int:
     df = add_gap(pd.DataFrame(rows))
     text = table(df, args.dataset, args.preset, facts)
     print(text)
-    out = Path(args.out) if args.out else OUT / f"long_run_{args.dataset}_{args.preset}.md"
-    out.parent.mkdir(parents=True, exist_ok=True)
     out.write_text(text, encoding="utf-8")
-    df.to_csv(out.with_suffix(".csv"), index=False)
+    df.drop(columns="gap_closed").to_csv(out.with_suffix(".csv"), index=False)
+    out.with_suffix(".facts.json").write_text(json.dumps(facts[0] if len(facts) == 1 else facts), encoding="utf-8")
     return 0
 
 
