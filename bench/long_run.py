@@ -300,7 +300,7 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--seed-list", default="", help="comma-separated seeds (overrides --seeds)")
     ap.add_argument("--chains", default="default",
                     help="'|'-separated chains: 'default' or 'key=value;key=value' config overrides")
-    ap.add_argument("--methods", default="all", help="'all', 'none' or comma-separated labels of METHODS")
+    ap.add_argument("--methods", default="all", help="'all', 'none' or '|'-separated labels of METHODS")
     ap.add_argument("--work", default="", help="scratch folder (default: a temporary one under /tmp)")
     ap.add_argument("--out", default="")
     ap.add_argument("--merge", default="", help="comma-separated .csv files of earlier runs (one per seed, each "
@@ -321,7 +321,7 @@ def main(argv: list[str] | None = None) -> int:
     seeds = ([int(s) for s in args.seed_list.split(",")] if args.seed_list
              else list(range(args.seeds if args.seeds is not None else preset.seeds)))
     methods = (METHODS if args.methods == "all" else {} if args.methods == "none"
-               else {k: METHODS[k] for k in args.methods.split(",")})
+               else {k: METHODS[k] for k in args.methods.split("|")})
     chains = args.chains.split("|")
     work = Path(args.work or f"/tmp/tarewise-long-run-{os.getpid()}")
     truth = insteval_truth(preset.members, preset.titles) if args.dataset == "insteval" else None
