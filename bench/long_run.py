@@ -5,9 +5,10 @@ Everything runs through the real command line (``python -m flows.cli``), as a us
 
 * **chain**: ``tarewise backfill --live each`` over days 1..N, so every night warm-starts from the live
   version and the gate decides; the live version is scored after each checkpoint night (``--at``);
-* **cold**: the chain's store copied into a fresh workspace, then ``tarewise run --cold`` on the checkpoint
-  date (the same window, trained from scratch), for the default and ``plain``; at the last checkpoint also
-  for every other method (``--methods``);
+* **cold**: an empty workspace whose logs hold the night's window as one partition (every organic and probe
+  rating up to the checkpoint date, moved to that date: the ratings the chain's store holds), then
+  ``tarewise run --cold`` on that date, for the default and ``plain``; at the last checkpoint also for every
+  other method (``--methods``);
 * **oracle**: a fresh workspace whose logs are one partition holding a uniform sample of cells as large as
   the organic log so far, plus the same probe ratings; ``run --cold`` with ``debias.method = "plain"``.
 
@@ -46,7 +47,7 @@ if str(ROOT) not in sys.path:
     sys.path.insert(0, str(ROOT))
 
 from bench.long_run_data import (World, bfi_world, insteval_truth, insteval_world, write_logs,  # noqa: E402
-                                 write_oracle_logs, write_test)
+                                 write_oracle_logs, write_test, write_window_logs)
 from bench.open_data import GROUPS  # noqa: E402
 
 OUT = ROOT / "bench" / "out"
@@ -188,35 +189,60 @@ def cold_run(label: str, over: dict, store_from: Path | None, logs: Path, day: i
         shutil.copytree(store_from / "store", ws / "store")
     cfg = write_config(ws.parent / f"{ws.name}.toml", {**base, "paths.logs": str(logs), **over})
     secs = cli("run", "--cold", "--date", world.date(day), "--config", str(cfg), "--workspace", str(ws), log=log)
-    return {"what": label, "night": day, "seconds": secs, **score(ws, live(ws), world, test, cfg, log)}
+    # Scored whatever the gate said: a first night compares the candidate only with its shadow.
+    version = sorted(p.name for p in (ws / "versions").iterdir() if not p.name.startswith("."))[-1]
+    return {"what": label, "night": day, "seconds": secs, **score(ws, version, world, test, cfg, log)}
 
 
 def run_seed(dataset: str, seed: int, preset: Preset, chains: list[str], methods: dict[str, dict], work: Path,
-             say=print, truth: np.ndarray | None = None, partial: Path | None = None) -> tuple[list[dict], dict]:
-    """Every row (chain / cold / plain / oracle per checkpoint night) for one seed, and chain facts."""
+             say=print, truth: np.ndarray | None = None, partial: Path | None = None,
+             parts: tuple[str, ...] = ("chain", "cold"), resume: bool = False) -> tuple[list[dict], dict]:
+    """Every row (chain / cold / plain / oracle per checkpoint night) for one seed, and chain facts.
+    ``parts``: the chains, the cold runs, or both (they share nothing but the data, so two processes can
+    run them side by side). ``resume``: keep ``work``'s earlier chain workspaces (a backfill skips the
+    nights already done)."""
     if dataset == "insteval":
         world = insteval_world(seed, preset.days, preset.members, preset.titles, preset.test_cells,
                                preset.organic_share, truth=truth)
     else:
         world = bfi_world(seed, preset.days, **preset.bfi_kwargs)
-    work = work / f"{dataset}-s{seed}"
-    shutil.rmtree(work, ignore_errors=True)
+    work = work / f"{dataset}-s{seed}" / "+".join(parts)
+    if not resume:
+        shutil.rmtree(work, ignore_errors=True)
     logs, test, log = work / "logs", work / "test.parquet", work / "cli.log"
-    work.mkdir(parents=True)
-    write_logs(world, logs)
-    write_test(world, test)
+    work.mkdir(parents=True, exist_ok=True)
+    if not (logs.exists() and test.exists()):
+        write_logs(world, logs)
+        write_test(world, test)
     base = base_settings(world, seed, logs, preset)
     rows: list[dict] = []
     facts: dict = {"world": {"organic": len(world.scenario.organic), "probe": len(world.scenario.probe),
                              "test": len(world.scenario.test_rating),
                              "organic_mean": float(world.scenario.organic["rating"].mean()),
                              "test_mean": float(world.scenario.test_rating.mean())}}
+
     def keep(row: dict) -> None:
         row["seed"] = seed
         rows.append(row)
         if partial is not None:     # rows so far, so a long run can be read before it ends
             pd.DataFrame(rows).to_csv(partial, index=False)
 
+    if "cold" in parts:
+        for day in preset.at:
+            # The night's window as one partition (every organic and probe rating up to `day`, moved to that
+            # date): an empty workspace, one `run --cold`, the same ratings the chain's store holds.
+            wlog = work / f"window-logs-{day}"
+            write_window_logs(world, wlog, day)
+            for m_label, m_over in (("cold: default", {}), ("plain", {"debias.method": "plain"}),
+                                    *((f"cold: {k}", v) for k, v in methods.items() if day == preset.at[-1])):
+                keep(cold_run(m_label, m_over, None, wlog, day, world, base, work, test, log))
+                say(f"{dataset} seed {seed} night {day} {m_label}: MAE {rows[-1]['mae']:.4f}")
+            olog = work / f"oracle-logs-{day}"
+            write_oracle_logs(world, olog, day)
+            keep(cold_run("oracle", {"debias.method": "plain"}, None, olog, day, world, base, work, test, log))
+            say(f"{dataset} seed {seed} night {day} oracle: MAE {rows[-1]['mae']:.4f}")
+    if "chain" not in parts:
+        return rows, facts
     for c, spec in enumerate(chains):
         label, over = parse_chain(spec)
         ws = work / f"chain{c}"
@@ -229,23 +255,16 @@ def run_seed(dataset: str, seed: int, preset: Preset, chains: list[str], methods
                  **score(ws, live(ws), world, test, cfg, log)}
             keep(r)
             say(f"{dataset} seed {seed} night {day} chain {label}: MAE {r['mae']:.4f} ({r['seconds']:.1f} s/night)")
-            if c == 0:
-                for m_label, m_over in (("cold: default", {}), ("plain", {"debias.method": "plain"}),
-                                        *((f"cold: {k}", v) for k, v in methods.items() if day == preset.at[-1])):
-                    keep(cold_run(m_label, m_over, ws, logs, day, world, base, work, test, log))
-                    say(f"{dataset} seed {seed} night {day} {m_label}: MAE {rows[-1]['mae']:.4f}")
-                olog = work / f"oracle-logs-{day}"
-                write_oracle_logs(world, olog, day)
-                keep(cold_run("oracle", {"debias.method": "plain"}, None, olog, day, world, base, work, test,
-                                     log))
-                say(f"{dataset} seed {seed} night {day} oracle: MAE {rows[-1]['mae']:.4f}")
             start = day + 1
         lg = ledger(ws)
+        bf = lg[lg["kind"] == "backfill"]
+        train = [json.loads(d).get("train", float("nan")) for d in bf["durations_json"].fillna("{}")]
         facts[f"chain: {label}"] = {
-            "nights": int((lg["kind"] == "backfill").sum()),
-            "done": int(((lg["kind"] == "backfill") & (lg["status"] == "done")).sum()),
-            "went_live": int(((lg["kind"] == "backfill") & (lg["state"] == "live")).sum()),
-            "held": int(((lg["kind"] == "backfill") & (lg["state"] == "held")).sum()),
+            "nights": int(bf["run_date"].nunique()),
+            "done": int(bf.loc[bf["status"] == "done", "run_date"].nunique()),
+            "went_live": int((bf["state"] == "live").sum()),
+            "held": int((bf["state"] == "held").sum()),
+            "train_s_per_night": float(np.nanmean(train)) if train else float("nan"),
         }
     return rows, facts
 
@@ -302,6 +321,9 @@ def main(argv: list[str] | None = None) -> int:
                     help="'|'-separated chains: 'default' or 'key=value;key=value' config overrides")
     ap.add_argument("--methods", default="all", help="'all', 'none' or '|'-separated labels of METHODS")
     ap.add_argument("--work", default="", help="scratch folder (default: a temporary one under /tmp)")
+    ap.add_argument("--parts", default="chain+cold", choices=("chain+cold", "chain", "cold"),
+                    help="run the chains, the cold runs, or both (two processes can split them)")
+    ap.add_argument("--resume", action="store_true", help="keep earlier chain workspaces under --work")
     ap.add_argument("--out", default="")
     ap.add_argument("--merge", default="", help="comma-separated .csv files of earlier runs (one per seed, each "
                     "with its .facts.json): write their combined table instead of running")
@@ -328,7 +350,8 @@ def main(argv: list[str] | None = None) -> int:
     rows, facts = [], []
     for seed in seeds:
         r, f = run_seed(args.dataset, seed, preset, chains, methods, work, truth=truth,
-                        partial=work / f"partial-{args.dataset}-s{seed}.csv")
+                        partial=work / f"partial-{args.dataset}-s{seed}-{args.parts}.csv",
+                        parts=tuple(args.parts.split("+")), resume=args.resume)
         rows += r
         facts.append({"seed": seed, **f})
     df = add_gap(pd.DataFrame(rows))

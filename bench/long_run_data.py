@@ -220,6 +220,17 @@ def write_logs(world: World, folder: Path) -> None:
         _write_day(folder, world.date(d), rows[day == d])
 
 
+def write_window_logs(world: World, folder: Path, day: int) -> None:
+    """One partition on ``day``: every organic and probe rating of days ``1..day``, their times moved to
+    ``day`` (so ingest keeps them): a cold run on it trains on the chain's window of that night."""
+    rng = np.random.default_rng(2)
+    scn = world.scenario
+    org, probe = scn.organic[world.organic_day <= day], scn.probe[world.probe_day <= day]
+    rows = pd.concat([_rows(org, np.full(len(org), day), "organic", rng),
+                      _rows(probe, np.full(len(probe), day), "probe", rng)], ignore_index=True)
+    _write_day(folder, world.date(day), rows)
+
+
 def write_oracle_logs(world: World, folder: Path, day: int) -> None:
     """One partition on ``day``: the oracle's uniform sample as organic ratings plus every probe rating up
     to ``day`` (the same probe the organic model sees, so early stopping and the held-out split agree)."""
