@@ -49,7 +49,7 @@ if str(ROOT) not in sys.path:
     sys.path.insert(0, str(ROOT))
 OUT = ROOT / "bench" / "out"
 
-STAGES = ("ingest", "window", "train", "evaluate", "predict", "publish", "report")
+STAGES = ("ingest", "window", "train", "evaluate", "anchor", "predict", "publish", "report")
 
 
 def _rss_mb() -> float:

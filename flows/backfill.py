@@ -14,9 +14,9 @@ from typing import Literal
 
 from prefect import flow, get_run_logger
 
-from flows import runners
+from flows import run_guard, runners
 from flows.nightly import nightly_for, push_to_shared
-from tasks import failpoints, ledger, steps
+from tasks import failpoints, steps
 from tasks.config import Config
 from tasks.lock import workspace_lock
 from tasks.operate import sweep as sweeps
@@ -50,15 +50,11 @@ def backfill(cfg: Config, start: str, end: str, live: Literal["last", "each"] = 
     log = get_run_logger()
     ws = Workspace.at(cfg.paths.workspace)
     dates = date_range(start, end)
-    with workspace_lock(ws.lock, f"backfill {start}..{end}", cfg.runtime.lock_stale_seconds) as held, \
-            runners.shared_cluster(cfg.runtime) as cluster:
+    with run_guard.locked_run(cfg, ws, f"backfill {start}..{end}", "backfill", start), \
+            run_guard.stop_signals(log), runners.shared_cluster(cfg.runtime) as cluster:
         run_night = nightly_for(cfg, dask_address=cluster)
-        if held["took_over"]:
-            log.warning("took over a stale workspace lock left by %s", held["took_over"].get("what"))
         if cfg.paths.shared:   # a workspace that has never run starts from the shared copy
             steps.with_io_retries(steps.restore_shared, cfg)(cfg)
-        for run_id in ledger.mark_interrupted(ws):
-            log.warning("run %s in the ledger never finished (its process died); marked interrupted", run_id)
         plan = plan_backfill(ws, cfg, start, end, force)
         skipped = [p.to_dict() for p in plan if p.action == "skip"]
         for p in skipped:
@@ -70,7 +66,7 @@ def backfill(cfg: Config, start: str, end: str, live: Literal["last", "each"] = 
             t0 = time.perf_counter()
             try:
                 out = run_night(cfg=cfg, run_date=p.run_date, kind="backfill", make_live=go_live,
-                                take_lock=False, base_from=base_from)
+                                take_lock=False, base_from=base_from, force=force)
             except Exception as exc:  # noqa: BLE001 - any failure stops the range the same way
                 done = [n["run_date"] for n in nights]
                 raise BackfillStopped(
@@ -81,6 +77,9 @@ def backfill(cfg: Config, start: str, end: str, live: Literal["last", "each"] = 
             nights.append(_night_row(out, time.perf_counter() - t0))
             log.info("%s: %s %s (%s)", p.run_date, out["status"], out.get("version_id") or "", out.get("state") or "")
             failpoints.hit("backfill:date-done")
+            if run_guard.stop_requested():
+                raise BackfillStopped(f"backfill stopped by {run_guard.stop_requested()} after {p.run_date} was done; "
+                                      "run the same backfill again to resume")
         retention = apply_retention_logged(cfg, ws, default_as_of(ws, cfg.runtime.timezone), log)
         if cfg.paths.shared:
             push_to_shared(cfg, f"backfill {start}..{end} is done here")

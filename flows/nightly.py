@@ -8,17 +8,17 @@ import pandas as pd
 from prefect import flow, get_run_logger
 from prefect.artifacts import create_markdown_artifact, create_table_artifact
 
-from flows import runners
+from flows import run_guard, runners
 from flows.alert_channels import prefect_channels
 from flows.night_record import NightRecord, epoch_seconds, input_counts, training_counts
-from tasks import ledger, steps
+from tasks import failpoints, ledger, steps
 from tasks.config import Config
 from tasks.dates import parse_date, yesterday
 from tasks.engine.checkpoint import Checkpoint
 from tasks.evaluate.gate import decide
 from tasks.evaluate.segments import user_skew_segments
 from tasks.ingest.logs import IngestResult
-from tasks.lock import workspace_lock
+from tasks.ingest.partition import inputs_key
 from tasks.monitor.night_report import measure_night, monitor_night
 from tasks.operate.retention import apply_retention_logged
 from tasks.operate.shared_copy import SharedCopyError
@@ -29,23 +29,23 @@ from tasks.workspace import Workspace
 
 @flow(name="tarewise-nightly")
 def nightly(cfg: Config, run_date: str | None = None, kind: str = "nightly", make_live: bool = True,
-            take_lock: bool = True, base_from: str | None = None, cold: bool = False) -> dict:
+            take_lock: bool = True, base_from: str | None = None, cold: bool = False, force: bool = False) -> dict:
     """One night; returns ``NightRecord.to_dict()`` (``flows/night_record.py``). ``make_live=False`` publishes without switching live (backfill's middle nights);
     ``take_lock=False`` when a parent flow (backfill) already holds the workspace lock; ``base_from``
     warm-starts from that version's chain instead of the live one (see ``versions.base_for_date``);
-    ``cold`` starts from scratch (a damaged base is otherwise refused)."""
+    ``cold`` starts from scratch (a damaged base is otherwise refused). A night already done with the same
+    inputs is not run again (one line says so) unless ``force`` or ``cold``; see ``flows/run_guard.py`` for
+    the lock wait, dead runs and signals."""
     run_date = run_date or yesterday(cfg.runtime.timezone)
     parse_date(run_date)   # a malformed date is refused before the ledger records a night
     ws = Workspace.at(cfg.paths.workspace)
     if take_lock:
-        with workspace_lock(ws.lock, f"{kind} run for {run_date}", cfg.runtime.lock_stale_seconds):
+        with run_guard.locked_run(cfg, ws, f"{kind} run for {run_date}", kind, run_date), \
+                run_guard.stop_signals(get_run_logger()):
             if cfg.paths.shared:   # a workspace that has never run starts from the shared copy
                 steps.with_io_retries(steps.restore_shared, cfg)(cfg)
-            # Holding the lock, no other run of this workspace is alive: "running" rows are dead runs.
-            for run_id in ledger.mark_interrupted(ws):
-                get_run_logger().warning("run %s never finished (killed or crashed); marked interrupted", run_id)
-            return _night(cfg, ws, run_date, kind, make_live, base_from, cold)
-    return _night(cfg, ws, run_date, kind, make_live, base_from, cold)
+            return _night(cfg, ws, run_date, kind, make_live, base_from, cold, force)
+    return _night(cfg, ws, run_date, kind, make_live, base_from, cold, force)
 
 
 def nightly_for(cfg: Config, dask_address: str | None = None, **options):
@@ -58,11 +58,28 @@ def nightly_for(cfg: Config, dask_address: str | None = None, **options):
 
 
 def _night(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool, base_from: str | None,
-           cold: bool = False) -> dict:
-    night = _work(cfg, ws, run_date, kind, make_live, base_from, cold)
-    if cfg.paths.shared:
+           cold: bool = False, force: bool = False) -> dict:
+    key = inputs_key(cfg.paths.logs, run_date, cfg)
+    same = None if (force or cold or key is None) else unchanged_night(ws, run_date, kind, key)
+    if same is not None:
+        get_run_logger().warning(same.message)
+        return same.to_dict()
+    night = _work(cfg, ws, run_date, kind, make_live, base_from, cold, key)
+    if cfg.paths.shared and night.status != "unchanged":
         night.shared = push_to_shared(cfg, night.outcome())
     return night.to_dict()
+
+
+def unchanged_night(ws: Workspace, run_date: str, kind: str, key: str) -> NightRecord | None:
+    """The night, status ``unchanged``, when its latest done run had these same inputs (no ledger row is
+    added: nothing ran); else None."""
+    prev = ledger.latest_done(ws, run_date)
+    if prev is None or prev.get("inputs_key") != key:
+        return None
+    out = NightRecord(kind, run_date, status="unchanged", version_id=prev["version_id"], state=prev["state"])
+    out.message = (f"night {run_date} already done with the same inputs (run {prev['run_id']}, version "
+                   f"{prev['version_id']}); not run again. Changed input files or config re-run it; so does --force")
+    return out
 
 
 def push_to_shared(cfg: Config, done: str) -> dict:
@@ -81,16 +98,23 @@ def push_to_shared(cfg: Config, done: str) -> dict:
 
 
 def _work(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool, base_from: str | None,
-          cold: bool = False) -> NightRecord:
+          cold: bool = False, key: str | None = None) -> NightRecord:
     """The night's steps. ``ledger.recorded`` keeps the ledger row (done, skipped, or failed with the
     exception) and each ``night.stage`` its duration."""
     log = get_run_logger()
     for name in versions.clean_staging(ws):
         log.warning("removed half-written version %s left by an interrupted run", name)
-    with ledger.recorded(ws, NightRecord(kind, run_date)) as night:
+    record = NightRecord(kind, run_date, flow_run_id=run_guard.flow_run_id(), inputs_key=key)
+    with ledger.recorded(ws, record) as night:
+        run_guard.watch(night)
         with night.stage("ingest"):
             ingested = _ingest(cfg, run_date)
             night.counts.update(input_counts(ingested))
+        if ingested.no_valid_rows:   # an empty day is said as such, never a normal-looking night
+            night.skip(f"empty day: {ingested.summary()}; nothing trained or published")
+            log.warning(night.message)
+            run_guard.send_alert(cfg, ws, "empty_day", run_date, night.message, kind, metric="rows_valid")
+            return night
         with night.stage("window"):
             window = steps.with_io_retries(steps.read_window, cfg)(cfg, run_date)
             if len(window) < cfg.runtime.min_ratings_to_train:
@@ -105,6 +129,9 @@ def _work(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool,
         with night.stage("evaluate"):
             segments = user_skew_segments(window, cfg.evaluate.skew_margin)
             night.evaluation = steps.evaluate(cfg, cand.probe_heldout, segments, cand.checkpoint, shadow, base)
+        with night.stage("anchor"):   # the strongest recent version on the same held-out ratings (gate rule 3)
+            night.evaluation = steps.compare_with_anchor(cfg, run_date, night.evaluation, cand.probe_heldout,
+                                                         cand.checkpoint, base_id, base)
         with night.stage("report"):   # tonight's metrics and alert rules come first: the gate may hold on an alert
             version_id = versions.new_version_id(ws, run_date)
             measured = measure_night(cfg, ws, run_date, window, ingested, trained, night.evaluation, base=base,
@@ -120,12 +147,21 @@ def _work(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool,
                                       night.evaluation, night.gate, cand.rounds, cand.notes, cand.checkpoint.method)
             state = steps.with_io_retries(steps.publish_version, cfg)(
                 cfg, version_id, cand.checkpoint, shadow, preds, manifest, make_live=night.gate.promote and make_live)
+        night.done(version_id, state, message=night.gate.reason)   # published: nothing below may fail the night
+        ledger.save(ws, night)
+        failpoints.hit("night:published")
+        night.epoch_seconds = epoch_seconds(trained)
         with night.stage("report"):
-            monitored = monitor_night(ws, cfg, measured, kind, prefect_channels(cfg),
-                                      outcome={"state": state, "gate": night.gate.reason})
-        night.alerts, night.epoch_seconds = monitored.alert_lines(), epoch_seconds(trained)
-        _artifacts(night, monitored.markdown)
-        night.done(version_id, state, message=night.gate.reason)
+            try:
+                monitored = monitor_night(ws, cfg, measured, kind, prefect_channels(cfg),
+                                          outcome={"state": state, "gate": night.gate.reason})
+                night.alerts = monitored.alert_lines()
+                _artifacts(night, monitored.markdown)
+            except Exception as exc:  # noqa: BLE001 - the version is published; say what is missing and how to redo it
+                night.message += (f"; report warning: the report or alerts failed after publishing "
+                                  f"({type(exc).__name__}: {exc}); fix that, then re-render with "
+                                  f"`tarewise report --date {run_date}`")
+                log.warning("night %s is %s as %s, but %s", run_date, state, version_id, night.message)
     if kind == "nightly":  # a backfill applies retention once, after its last night
         apply_retention_logged(cfg, ws, run_date, log)
     return night

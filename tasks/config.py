@@ -225,6 +225,17 @@ class GateConfig(_Section):
     tolerance_mae: float = Field(0.01, ge=0.0, description="Candidate may be at most this much worse than live.")
     max_segment_regression: float = Field(0.05, ge=0.0, description="No segment's MAE may rise by more than this.")
     min_heldout: int = Field(10, ge=0, description="Fewer held-out probe ratings than this: the gate holds.")
+    anchor_nights: int = Field(14, ge=0, description="The anchor is the strongest of this many most recent "
+                               "versions that were live (or promoted by the gate), re-scored on tonight's "
+                               "held-out probe ratings. 0: no anchor (the candidate is compared with live only).")
+    anchor_budget: float = Field(0.01, ge=0.0, description="Cumulative budget: the candidate is held when its "
+                                 "held-out MAE is worse than the anchor's, on the same ratings, by more than "
+                                 "this, even if it is within gate.tolerance_mae of live. Small steps down add "
+                                 "up against it.")
+    segments_vs_shadow: Literal["hold", "note"] = Field(
+        "hold", description="Every night each segment of the candidate is also compared with the plain shadow "
+        "model (gate.max_segment_regression, gate.min_heldout): 'hold' holds a candidate with a segment worse "
+        "than doing nothing; 'note' promotes it and names the segment in the gate's reason.")
     hold_on_alert: Literal["off", "warning", "critical"] = Field(
         "off", description="Hold a candidate whose night raised an alert of this severity or worse ('warning' "
         "holds on warnings and critical alerts). 'off': alerts never hold; the held-out probe ratings judge "
@@ -300,6 +311,16 @@ class RuntimeConfig(_Section):
     lock_stale_seconds: int = Field(4 * 3600, ge=60, description="A store lock older than this with a dead "
                                     "holder is taken over.")
     min_ratings_to_train: int = Field(1, ge=1, description="Skip training on a date with fewer ratings in the window.")
+    lock_wait_seconds: int = Field(1800, ge=0, description="A scheduled or flow-started run (nightly, backfill) "
+                                   "waits this long for another run to release the workspace lock, then gives up "
+                                   "with one line recorded in the ledger (status 'refused'). `tarewise run` and "
+                                   "`backfill` from a terminal are refused at once instead.")
+    catch_up: str = Field("all", description="Nights missed since the last done one (serve down, a dropped slot): "
+                          "'all' runs them before the scheduled night, oldest first; 'last:N' only the N most "
+                          "recent (the older ones are reported as missed in `status` and an alert); 'none' runs "
+                          "none (all are reported).")
+    catch_up_per_run: int = Field(0, ge=0, description="At most this many nights per scheduled run, oldest first "
+                                  "(the scheduled night waits until the backlog is done); 0 = no limit.")
     min_free_mb: int = Field(200, ge=0, description="Commands that write refuse to start when the workspace's disk "
                              "has less free space than this (MB); 0 = no check. A night writes a version (model, "
                              "predictions), store and report files; 200 MB covers the demo many times over "
@@ -314,6 +335,23 @@ class RuntimeConfig(_Section):
     @classmethod
     def _cron(cls, v: str) -> str:
         return check_cron(v)
+
+    @field_validator("catch_up")
+    @classmethod
+    def _catch_up(cls, v: str) -> str:
+        v = v.strip().lower()
+        if v in ("all", "none"):
+            return v
+        head, _, n = v.partition(":")
+        if head == "last" and n.isdigit() and int(n) >= 1:
+            return f"last:{int(n)}"
+        raise ValueError(f"{v!r} is not 'all', 'none' or 'last:N' (N >= 1)")
+
+    def catch_up_limit(self) -> int | None:
+        """How many missed nights to run: None = all, 0 = none, N for 'last:N'."""
+        if self.catch_up == "all":
+            return None
+        return 0 if self.catch_up == "none" else int(self.catch_up.split(":")[1])
 
 
 class DriftConfig(_Section):

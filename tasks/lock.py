@@ -59,32 +59,48 @@ def check_free(path: Path, stale_seconds: float) -> None:
         raise LockHeld(_held_message(path, holder))
 
 
-@contextmanager
-def workspace_lock(path: Path, what: str, stale_seconds: float):
-    """Hold the lock for the ``with`` block; raise :class:`LockHeld` with the holder's details if taken.
+class LockWaitExpired(LockHeld):
+    """The lock stayed held for the whole wait (``runtime.lock_wait_seconds``)."""
 
-    Yields a dict with ``took_over`` (the stale holder's info, or None).
+
+@contextmanager
+def workspace_lock(path: Path, what: str, stale_seconds: float, wait_seconds: float = 0.0, poll_seconds: float = 1.0):
+    """Hold the lock for the ``with`` block; raise :class:`LockHeld` with the holder's details if taken.
+    With ``wait_seconds`` > 0, wait that long for a live holder to finish first (checking every
+    ``poll_seconds``), then raise :class:`LockWaitExpired`.
+
+    Yields a dict with ``took_over`` (the stale holder's info, or None) and ``waited`` (seconds).
     """
     path.parent.mkdir(parents=True, exist_ok=True)
     me = {"pid": os.getpid(), "host": socket.gethostname(), "started": time.time(), "what": what}
     took_over = None
-    for _ in range(2):
+    t0 = time.monotonic()
+    attempts = 0
+    while True:
         try:
             fd = os.open(path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
         except FileExistsError:
             holder = read_lock(path)
             if not is_stale(holder, stale_seconds):
-                raise LockHeld(_held_message(path, holder)) from None
+                waited = time.monotonic() - t0
+                if waited >= wait_seconds:
+                    if wait_seconds > 0:
+                        raise LockWaitExpired(f"gave up after waiting {waited:.0f} s (runtime.lock_wait_seconds = "
+                                              f"{wait_seconds:g}): {_held_message(path, holder)}") from None
+                    raise LockHeld(_held_message(path, holder)) from None
+                time.sleep(min(poll_seconds, max(wait_seconds - waited, 0.01)))
+                continue
+            attempts += 1
+            if attempts > 2:
+                raise LockHeld(f"could not take the workspace lock {path} (raced with another run)")
             took_over = holder
             path.unlink(missing_ok=True)
             continue
         with os.fdopen(fd, "w") as fh:
             json.dump(me, fh)
         break
-    else:
-        raise LockHeld(f"could not take the workspace lock {path} (raced with another run)")
     try:
-        yield {"took_over": took_over}
+        yield {"took_over": took_over, "waited": round(time.monotonic() - t0, 1)}
     finally:
         if (read_lock(path) or {}).get("pid") == me["pid"]:
             path.unlink(missing_ok=True)

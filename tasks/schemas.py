@@ -61,7 +61,7 @@ LEDGER = pa.schema([
     pa.field("run_id", pa.string(), nullable=False),
     pa.field("kind", pa.string(), nullable=False),        # nightly | backfill | rollback | sweep
     pa.field("run_date", pa.string(), nullable=False),    # YYYY-MM-DD
-    pa.field("status", pa.string(), nullable=False),      # running | done | failed | skipped | interrupted
+    pa.field("status", pa.string(), nullable=False),      # running | done | failed | skipped | interrupted | refused
     pa.field("version_id", pa.string()),
     pa.field("state", pa.string()),                       # live | held | ""
     pa.field("rows_ingested", pa.int64()),
@@ -70,6 +70,9 @@ LEDGER = pa.schema([
     pa.field("finished_at", pa.timestamp("us", tz="UTC")),
     pa.field("durations_json", pa.string()),              # {"ingest": s, "train": s, ...}
     pa.field("message", pa.string()),
+    pa.field("flow_run_id", pa.string()),                 # the Prefect flow run that ran it (None outside one)
+    pa.field("inputs_key", pa.string()),                  # sha256 of the day's input files + config digest
+    pa.field("stage", pa.string()),                       # the stage it is in (kept while running; last one after)
 ])
 
 #: Nightly drift metrics: one row per run date (re-running a date replaces its row).
@@ -112,6 +115,10 @@ NIGHTLY_METRICS = pa.schema([
     pa.field("profile_users", _I64), pa.field("profile_move_mean", _F64), pa.field("profile_move_p90", _F64),
     # held-out probe accuracy
     *_EVAL_FIELDS,
+    # the anchor (the strongest recent version) on the held-out ratings both it and the candidate are
+    # scored on: its MAE, the candidate's and live's on the same rows, candidate minus anchor
+    pa.field("anchor_version", pa.string()), pa.field("anchor_n", _I64), pa.field("anchor_mae", _F64),
+    pa.field("anchor_candidate_mae", _F64), pa.field("anchor_live_mae", _F64), pa.field("anchor_margin", _F64),
     # volumes
     pa.field("rows_read", _I64), pa.field("rows_ingested", _I64), pa.field("rows_quarantined", _I64),
     pa.field("quarantine_share", _F64), pa.field("new_users", _I64), pa.field("new_items", _I64),

@@ -8,13 +8,15 @@ cost a hash of every row and duplicate the store).
 
 from __future__ import annotations
 
+import dataclasses
+
 import pandas as pd
 from prefect import get_run_logger, task
 from prefect.cache_policies import NO_CACHE
 
 from tasks.config import Config
 from tasks.engine.checkpoint import Checkpoint
-from tasks.evaluate import evaluation
+from tasks.evaluate import anchor, evaluation
 from tasks.ingest import logs as ingest
 from tasks.ingest import store
 from tasks.operate import shared_copy, shared_restore
@@ -111,6 +113,22 @@ def train(cfg: Config, window: pd.DataFrame, base: Checkpoint | None,
 def evaluate(cfg: Config, heldout: pd.DataFrame, segments: pd.Series, candidate: Checkpoint,
              shadow: Checkpoint | None, live: Checkpoint | None) -> evaluation.Evaluation:
     return evaluation.evaluate_models(heldout, segments, candidate, shadow, live, cfg.evaluate, cfg.model.seed)
+
+
+@task(name="compare-with-anchor", **COMPUTE)
+def compare_with_anchor(cfg: Config, run_date: str, evaluated: evaluation.Evaluation, heldout: pd.DataFrame,
+                        candidate: Checkpoint, base_id: str | None, base: Checkpoint | None
+                        ) -> evaluation.Evaluation:
+    """``evaluated`` with its ``anchor``: the strongest of the recent versions (``gate.anchor_nights``)
+    re-scored on tonight's held-out probe ratings (``evaluate/anchor.py``); versions that cannot serve
+    are logged and skipped."""
+    ws = Workspace.at(cfg.paths.workspace)
+    priors, skipped = versions.anchor_versions(ws, run_date, cfg.gate.anchor_nights,
+                                               loaded={base_id: base} if base_id and base is not None else None)
+    for line in skipped:
+        get_run_logger().warning("not a possible anchor tonight: %s", line)
+    compared = anchor.compare_with_anchor(heldout, candidate, priors, cfg.gate.min_heldout, base_id, base, skipped)
+    return dataclasses.replace(evaluated, anchor=compared)
 
 
 @task(name="plan-scoring", **COMPUTE)

@@ -12,6 +12,7 @@ bootstrap = 20
 
 [gate]
 tolerance_mae = 1.0
+anchor_budget = 1.0
 max_segment_regression = 2.0
 min_heldout = 1
 

@@ -60,7 +60,13 @@ def test_failure_is_recorded_with_the_exception_and_propagates(ws, exc):
             with run.stage("train"):
                 raise exc
     row = _only_row(ws)
-    assert row["status"] == "failed" and row["message"].startswith(type(exc).__name__)
+    if isinstance(exc, KeyboardInterrupt):   # a stop request is recorded as what it was, not as a failure
+        assert row["status"] == "interrupted"
+        assert row["message"] == "stopped by SIGINT (Ctrl-C) during stage train (last finished step: ingest)"
+    else:
+        assert row["status"] == "failed" and row["message"].startswith(type(exc).__name__)
+        assert row["message"].endswith("(in stage train)")
+    assert row["stage"] == "train"
     assert set(json.loads(row["durations_json"])) == {"ingest", "train"}  # the failed stage is timed too
 
 
@@ -101,3 +107,28 @@ def test_mark_interrupted_changes_only_running_rows(ws):
     assert ledger.read_ledger(ws)["status"].tolist() == ["interrupted", "done"]
     assert ledger.mark_interrupted(ws) == []
 
+
+
+def test_running_row_keeps_its_stage_so_a_dead_run_is_named_by_stage(ws):
+    """A run killed outright never finishes its row; the stage it was in is already in the ledger, and the
+    next run (holding the lock) settles it as interrupted in that stage, with its Prefect flow run id."""
+    rec = RunRecord("nightly", "2026-11-02", flow_run_id="0c6b5d1e-flow")
+    ctx = recorded(ws, rec)
+    run = ctx.__enter__()          # never exited: as after a SIGKILL
+    with run.stage("ingest"):
+        pass
+    with run.stage("train"):
+        row = _only_row(ws)
+        assert (row["status"], row["stage"], row["flow_run_id"]) == ("running", "train", "0c6b5d1e-flow")
+    dead = ledger.settle_dead_runs(ws)
+    assert [(d["run_date"], d["stage"], d["flow_run_id"]) for d in dead] == [("2026-11-02", "train", "0c6b5d1e-flow")]
+    row = _only_row(ws)
+    assert row["status"] == "interrupted" and row["message"].endswith("during stage train")
+
+
+def test_refused_rows_do_not_hide_a_done_night(ws):
+    with recorded(ws, RunRecord("nightly", "2026-11-02")) as run:
+        run.done("v20261102-1", "live")
+    ledger.record_refusal(ws, "backfill", "2026-11-02", "workspace lock still held after 5 s")
+    assert ledger.latest_by_date(ws).loc["2026-11-02", "status"] == "done"
+    assert ledger.read_ledger(ws)["status"].tolist() == ["done", "refused"]

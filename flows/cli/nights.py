@@ -26,6 +26,8 @@ def run(date: Optional[str] = typer.Option(None, "--date", "-d", help="Run date 
         dask_address: Optional[str] = DaskAddressOpt,
         cold: bool = typer.Option(False, "--cold", help="Start from scratch instead of warm-starting from the live "
                                   "version (which is refused when its files are damaged; see `tarewise status`)."),
+        force: bool = typer.Option(False, "--force", help="Run the night even when it is already done with the same "
+                                   "input files and config (otherwise it is not run again; one line says so)."),
         verbose: bool = VerboseOpt) -> None:
     """One nightly run. Exits non-zero on failure; the live version is then untouched."""
     if date is not None:
@@ -45,7 +47,7 @@ def run(date: Optional[str] = typer.Option(None, "--date", "-d", help="Run date 
     from flows.nightly import nightly_for
     try:
         with console.status(f"nightly run for {date or 'yesterday'} ..."):
-            out = nightly_for(cfg)(cfg=cfg, run_date=date, cold=cold)
+            out = nightly_for(cfg)(cfg=cfg, run_date=date, cold=cold, force=force)
     except Exception as exc:  # noqa: BLE001 - the CLI reports every failure the same way
         fail(exc, "run", verbose)
     print_night(out)

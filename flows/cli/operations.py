@@ -236,5 +236,14 @@ def serve(work_pool: Optional[str] = typer.Option(None, "--work-pool", help="Reg
             console.print(f"start a worker to run them: prefect worker start --pool {work_pool}")
         return
     from prefect import serve as prefect_serve
-    console.print(f"serving nightly at '{cfg.runtime.schedule}' ({cfg.runtime.timezone}) and backfill; Ctrl-C stops")
+
+    from flows.deployments import catch_up_on_start
+    for d in deployments:   # registered first, so a catch-up run can be started before serving
+        d.apply()
+    line = catch_up_on_start(cfg)
+    if line:
+        console.print(line, highlight=False, soft_wrap=True)
+    console.print(f"serving nightly at '{cfg.runtime.schedule}' ({cfg.runtime.timezone}) and backfill; Ctrl-C "
+                  "stops (stopping pauses both deployments and cancels a run in progress; run `tarewise serve` "
+                  "again to resume, see README)", highlight=False)
     prefect_serve(*deployments)

@@ -84,8 +84,18 @@ def status(runs: int = typer.Option(10, "--runs", help="How many ledger rows to 
     ws = existing_workspace(cfg, config, workspace)
     from tasks.operate.doctor import PROBLEM
     from tasks.operate.status import status as workspace_status
-    # Paused deployments need a Prefect server: their check goes into extra_checks (issue 15, part B).
-    s = workspace_status(ws, cfg.runtime.timezone, cfg.runtime.lock_stale_seconds, runs, days, extra_checks=())
+    from tasks.dates import today
+    from tasks.operate.catch_up import night_findings
+
+    def paused():   # needs a Prefect server; Prefect is imported only when one is named
+        import os
+        if not os.environ.get("PREFECT_API_URL"):
+            return []
+        from flows.deployments import paused_deployments
+        return paused_deployments()
+
+    checks = (lambda: night_findings(ws, today(cfg.runtime.timezone)), paused)
+    s = workspace_status(ws, cfg.runtime.timezone, cfg.runtime.lock_stale_seconds, runs, days, extra_checks=checks)
     console.print(f"workspace: {s['workspace']}", highlight=False)
     lv = s["live"]
     if lv == "unknown":

@@ -33,17 +33,21 @@ def print_night(out: dict) -> None:
                       f"{out['version_id']} --reason ...", highlight=False, markup=False)
     for a in out.get("alerts", []):
         console.print(f"[bold magenta]alert[/] {a}", highlight=False)
+    warning = (out.get("message") or "").partition("; report warning: ")[2]
+    if warning:
+        console.print("[yellow]report warning[/]: " + warning.replace("[", r"\["), highlight=False, soft_wrap=True)
 
 
 def versions_table(manifests: list[dict], title: str, reviews: dict | None = None,
                    awaiting: set[str] = frozenset()) -> tuple[Table, list[str]]:
-    """(one row per version manifest: state, run date, method, held-out MAE of each model, gate decision;
+    """(one row per version manifest: state, run date, method, held-out MAE of each model, the candidate's
+    margin over the anchor (:func:`anchor_cell`), gate decision;
     one ``"<version>: <gate reason>"`` line per version, printed under the table because reasons are long).
     ``reviews``: a person's approval or rejection per version (``approval.reviews``), added to its line;
     ``awaiting``: versions awaiting approval, shown with that state."""
     reviews = reviews or {}
     t = Table(title=title)
-    for col in ("version", "state", "run date", "method", "MAE cand.", "MAE shadow", "MAE live", "gate"):
+    for col in ("version", "state", "run date", "method", "MAE cand.", "MAE shadow", "MAE live", "vs anchor", "gate"):
         t.add_column(col, no_wrap=True)
     reasons = []
     for m in manifests:
@@ -52,12 +56,20 @@ def versions_table(manifests: list[dict], title: str, reviews: dict | None = Non
         gate = m.get("gate", {})
         t.add_row(m["version_id"], "awaiting approval" if m["version_id"] in awaiting else m["state"],
                   m.get("run_date", ""), m.get("method", ""), f("candidate"),
-                  f("shadow"), f("live"), f"{'promote' if gate.get('promote') else 'hold'} vs "
+                  f("shadow"), f("live"), anchor_cell(mt.get("anchor")), f"{'promote' if gate.get('promote') else 'hold'} vs "
                   f"{gate.get('compared_to', '?')}")
         review = reviews.get(m["version_id"])
         reasons.append(f"{m['version_id']}: {m.get('damage') or gate.get('reason', '')}"
                        + (f" [{review['kind']}: {review['message']}]" if review else ""))
     return t, reasons
+
+
+def anchor_cell(anchor: dict | None) -> str:
+    """The candidate's held-out MAE minus the anchor's on the same ratings, and the anchor's id
+    (``"+0.0031 v20261105-1"``); ``-`` for versions judged without an anchor (or before anchors existed)."""
+    if not isinstance(anchor, dict) or anchor.get("margin") is None:
+        return "-"
+    return f"{anchor['margin']:+.4f} {anchor.get('version_id', '?')}"
 
 
 def runs_table(runs: list[dict]) -> Table:

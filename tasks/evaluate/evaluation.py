@@ -14,6 +14,7 @@ import pandas as pd
 from tasks.config import EvaluateConfig
 from tasks.engine.checkpoint import Checkpoint
 from tasks.engine.metrics import segmented_errors
+from tasks.evaluate.anchor import AnchorComparison
 
 #: Models in the order they are scored and recorded.
 MODELS = ("candidate", "shadow", "live")
@@ -63,19 +64,26 @@ class ModelErrors(Errors):
 @dataclass(frozen=True)
 class Evaluation:
     """One night's held-out errors of the candidate, the plain shadow model and the live version (None:
-    that model does not exist tonight). All three are scored on the same pairs with the same seed."""
+    that model does not exist tonight). All three are scored on the same pairs with the same seed.
+    ``anchor``: the candidate against the strongest recent version on the same pairs (``anchor.py``;
+    None when there is none, e.g. the first night or ``gate.anchor_nights = 0``)."""
 
     candidate: ModelErrors
     shadow: ModelErrors | None = None
     live: ModelErrors | None = None
+    anchor: AnchorComparison | None = None
 
     def models(self) -> dict[str, ModelErrors | None]:
         """``{"candidate": ..., "shadow": ..., "live": ...}`` in :data:`MODELS` order."""
         return {name: getattr(self, name) for name in MODELS}
 
     def to_dict(self) -> dict:
-        """The manifest's ``metrics``: ``{model: errors dict or None}``."""
-        return {name: None if e is None else e.to_dict() for name, e in self.models().items()}
+        """The manifest's ``metrics``: ``{model: errors dict or None}``, plus ``"anchor"`` (the
+        comparison's dict) when there is an anchor."""
+        out = {name: None if e is None else e.to_dict() for name, e in self.models().items()}
+        if self.anchor is not None:
+            out["anchor"] = self.anchor.to_dict()
+        return out
 
 
 def evaluate_models(heldout: pd.DataFrame, segments: pd.Series, candidate: Checkpoint, shadow: Checkpoint | None,

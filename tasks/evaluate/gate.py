@@ -5,19 +5,28 @@ Rules, in order (the first that fails holds the candidate, with its reason):
 2. candidate held-out MAE <= baseline MAE + ``gate.tolerance_mae`` (baseline: the live version; on the
    first night, or when live cannot be scored, the plain shadow model; with neither, the candidate is
    promoted once rule 1 holds);
-3. no selection-skew segment's MAE rises above the baseline's by more than ``gate.max_segment_regression``
-   (segments with fewer than ``gate.min_heldout`` ratings on either side are not judged).
+3. candidate held-out MAE <= anchor MAE + ``gate.anchor_budget`` on the same ratings (the anchor: the
+   strongest of the last ``gate.anchor_nights`` versions that were live or promoted, re-scored on
+   tonight's held-out probe ratings; see ``anchor.py``). A budget shared by every step since the anchor:
+   five steps of 0.008 each pass rule 2 one by one, but not this rule once they add up past the budget.
+   No anchor (first night, ``gate.anchor_nights = 0``, every recent version gone): not judged;
+4. no selection-skew segment's MAE rises above the baseline's by more than ``gate.max_segment_regression``
+   (segments with fewer than ``gate.min_heldout`` ratings on either side are not judged);
+5. no segment is worse than doing nothing: when the baseline is live, each segment is also compared
+   with the plain shadow model under the same tolerance and row minimum, every night (without a shadow
+   model tonight, ``runtime.shadow = false``, not judged). ``gate.segments_vs_shadow = "note"`` promotes
+   such a candidate and names the segment in the reason instead.
 
 Then two rules an operator may switch on, applied to a candidate the rules above promote
 (:func:`hold_on_alert`, :func:`await_approval`):
 
-4. ``gate.hold_on_alert`` ("off", "warning", "critical"): hold when the night raised an alert of that
+6. ``gate.hold_on_alert`` ("off", "warning", "critical"): hold when the night raised an alert of that
    severity or worse. Off by default: the held-out probe ratings are the unbiased judge of a candidate,
    whatever the night's selection skew did; an operator may still prefer not to promote on such a night.
    The alerts come in as plain data (severity, kind): the flow evaluates the monitor's alert rules on
    the night's metrics before the gate decides. With the setting off, an alert is still named in the
    reason of a promoted candidate, so the choice shows.
-5. ``gate.require_approval``: a candidate that passes everything waits as held with the reason
+7. ``gate.require_approval``: a candidate that passes everything waits as held with the reason
    "awaiting approval" (``awaiting_approval`` set) until a person approves it (``tarewise approve``).
 """
 
@@ -28,6 +37,7 @@ from collections.abc import Sequence
 from dataclasses import asdict, dataclass, replace
 
 from tasks.config import GateConfig
+from tasks.evaluate.anchor import AnchorComparison
 from tasks.evaluate.evaluation import Evaluation, ModelErrors
 
 
@@ -77,7 +87,7 @@ def alert_holds(severity: str, setting: str) -> bool:
 
 
 def hold_on_alert(decision: GateDecision, cfg: GateConfig, alerts: Sequence[tuple[str, str]]) -> GateDecision:
-    """Rule 4: a promoted candidate is held when the night raised an alert that ``gate.hold_on_alert``
+    """Rule 6: a promoted candidate is held when the night raised an alert that ``gate.hold_on_alert``
     holds on; the reason names the alert and the setting. An alert that does not hold is named in the
     promotion's reason. A candidate already held keeps its reason."""
     if not decision.promote or not alerts:
@@ -94,7 +104,7 @@ def hold_on_alert(decision: GateDecision, cfg: GateConfig, alerts: Sequence[tupl
 
 
 def await_approval(decision: GateDecision, cfg: GateConfig) -> GateDecision:
-    """Rule 5: with ``gate.require_approval``, a candidate that passed every rule is held, awaiting approval."""
+    """Rule 7: with ``gate.require_approval``, a candidate that passed every rule is held, awaiting approval."""
     if not decision.promote or not cfg.require_approval:
         return decision
     return replace(decision, promote=False, awaiting_approval=True,
@@ -106,7 +116,7 @@ def _and(items: list[str]) -> str:
 
 
 def judge_errors(evaluation: Evaluation, cfg: GateConfig) -> GateDecision:
-    """Rules 1 to 3 on one night's held-out errors."""
+    """Rules 1 to 5 on one night's held-out errors."""
     cand = evaluation.candidate
     base, name = baseline(evaluation)
     if cand.n < cfg.min_heldout:
@@ -119,12 +129,50 @@ def judge_errors(evaluation: Evaluation, cfg: GateConfig) -> GateDecision:
     if c > b + cfg.tolerance_mae:
         return GateDecision(False, name, f"held-out MAE {c:.4f} worse than {name} {b:.4f} by more than "
                                          f"gate.tolerance_mae={cfg.tolerance_mae}")
+    held = judge_anchor(evaluation.anchor, cfg)
+    if held:
+        return GateDecision(False, name, held)
+    held = judge_segments(cand, base, name, cfg)
+    if held:
+        return GateDecision(False, name, held)
+    below_plain = None
+    if name == "live" and evaluation.shadow is not None:
+        below_plain = judge_segments(cand, evaluation.shadow, "the plain shadow model", cfg)
+        if below_plain and cfg.segments_vs_shadow == "hold":
+            return GateDecision(False, name, f"{below_plain}: no segment may be worse than doing nothing "
+                                             f"(gate.segments_vs_shadow = \"hold\")")
+    reason = f"held-out MAE {c:.4f} vs {name} {b:.4f}: within tolerance" + anchor_note(evaluation.anchor)
+    if below_plain:
+        reason += f"; {below_plain}, which does not hold it (gate.segments_vs_shadow = \"note\")"
+    return GateDecision(True, name, reason)
+
+
+def judge_anchor(anchor: AnchorComparison | None, cfg: GateConfig) -> str | None:
+    """Rule 3: the reason the candidate is held against the anchor, or None (within budget, or no anchor)."""
+    if anchor is None or not anchor.margin > cfg.anchor_budget:
+        return None
+    which = "the live version itself" if anchor.is_live else f"the strongest of the last {anchor.compared} versions"
+    return (f"held-out MAE {anchor.candidate_mae:.4f} worse than the anchor {anchor.version_id} ({which}) "
+            f"{anchor.mae:.4f} on the same {anchor.n} ratings by {anchor.margin:.4f}, more than "
+            f"gate.anchor_budget={cfg.anchor_budget}: the steps since the anchor add up")
+
+
+def anchor_note(anchor: AnchorComparison | None) -> str:
+    """The anchor comparison named in a promotion's reason ('' without an anchor)."""
+    if anchor is None:
+        return ""
+    return f"; vs anchor {anchor.version_id} {anchor.mae:.4f} on {anchor.n} ratings: {anchor.margin:+.4f}"
+
+
+def judge_segments(cand: ModelErrors, other: ModelErrors, name: str, cfg: GateConfig) -> str | None:
+    """The first segment (label order) whose MAE is worse than ``other``'s by more than
+    ``gate.max_segment_regression``, as a reason; None when none is. Segments with fewer than
+    ``gate.min_heldout`` ratings on either side, or missing from ``other``, are not judged."""
     for label, seg in sorted(cand.segments.items()):
-        bseg = base.segments.get(label)
-        if bseg is None or min(seg.n, bseg.n) < cfg.min_heldout:
+        oseg = other.segments.get(label)
+        if oseg is None or min(seg.n, oseg.n) < cfg.min_heldout:
             continue
-        if seg.mae > bseg.mae + cfg.max_segment_regression:
-            return GateDecision(False, name, f"segment '{label}' MAE {seg.mae:.4f} worse than {name} "
-                                             f"{bseg.mae:.4f} by more than gate.max_segment_regression="
-                                             f"{cfg.max_segment_regression}")
-    return GateDecision(True, name, f"held-out MAE {c:.4f} vs {name} {b:.4f}: within tolerance")
+        if seg.mae > oseg.mae + cfg.max_segment_regression:
+            return (f"segment '{label}' MAE {seg.mae:.4f} worse than {name} {oseg.mae:.4f} by more than "
+                    f"gate.max_segment_regression={cfg.max_segment_regression}")
+    return None

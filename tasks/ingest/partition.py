@@ -9,6 +9,8 @@ the rows of a moved file would otherwise vanish without a word.
 
 from __future__ import annotations
 
+import hashlib
+import json
 import os
 from dataclasses import dataclass, field
 
@@ -135,3 +137,29 @@ def _dangling_links(fs: pafs.FileSystem, part: str) -> list[str]:
             if not name.startswith(("_", ".")) and os.path.islink(path) and not os.path.exists(path):
                 out.append(f"{path} -> {os.readlink(path)}")
     return sorted(out)
+
+
+def inputs_key(logs: str, run_date: str, cfg: Config) -> str | None:
+    """What a night's result depends on, as one sha256: each input file's name, size and checksum (the
+    manifest's ``inputs``) and the config digest (``Config.digest``, paths excluded). Two triggers for
+    the same date with the same key would publish the same version. None when the partition cannot be
+    listed or read (the night itself then fails with the reason)."""
+    try:
+        listing = list_partition(logs, run_date, cfg)
+        fs, _ = resolve(logs)
+        files = []
+        for path in listing.paths:
+            digest = hashlib.sha256()
+            with fs.open_input_stream(path) as fh:
+                while chunk := fh.read(1 << 22):
+                    digest.update(chunk)
+            files.append([path[len(listing.part):].lstrip("/"), digest.hexdigest()])
+    except (IngestError, OSError, pa.ArrowException):
+        return None
+    return key_of(files, cfg)
+
+
+def key_of(files: list, cfg: Config) -> str:
+    """The inputs key of these ``[relative name, sha256]`` pairs under ``cfg``."""
+    raw = json.dumps({"files": sorted(files), "config": cfg.digest()}, sort_keys=True)
+    return hashlib.sha256(raw.encode()).hexdigest()[:32]

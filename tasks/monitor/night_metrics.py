@@ -206,7 +206,8 @@ def night_volumes(volumes: Mapping, r: RatingsByUser, is_tonight: np.ndarray) ->
 
 def model_errors(evaluation: Evaluation | None) -> Part:
     """Held-out probe errors per model (``<model>_mae`` ... ``<model>_n``; NaN/None for an absent model),
-    and the per-segment errors for the report."""
+    the anchor comparison (``anchor_*``; NaN/None without an anchor), and the per-segment errors for the
+    report."""
     columns: dict = {}
     segments: dict[str, object] = {}
     for name in MODELS:
@@ -216,7 +217,15 @@ def model_errors(evaluation: Evaluation | None) -> Part:
         columns[f"{name}_n"] = _int(e.n) if e is not None else None
         if e is not None and e.segments:
             segments[name] = {label: s.to_dict() for label, s in e.segments.items()}
-    return columns, {"evaluation_segments": segments}
+    a = evaluation.anchor if evaluation is not None else None
+    columns.update({"anchor_version": a.version_id if a else None, "anchor_n": _int(a.n) if a else None,
+                    "anchor_mae": _float(a.mae) if a else math.nan,
+                    "anchor_candidate_mae": _float(a.candidate_mae) if a else math.nan,
+                    "anchor_live_mae": _float(a.live_mae) if a else math.nan,
+                    "anchor_margin": _float(a.margin) if a else math.nan})
+    return columns, {"evaluation_segments": segments,
+                     "anchor": {"run_date": a.run_date, "is_live": a.is_live, "compared": a.compared,
+                                "skipped": list(a.skipped)} if a else None}
 
 
 def compute_night_metrics(

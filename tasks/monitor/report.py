@@ -40,6 +40,7 @@ from tasks.monitor.metrics_store import read_metrics, row_of
 from tasks.monitor.night_metrics import jsonable
 from tasks.monitor.report_charts import (
     both_widths,
+    chart_anchor_trend,
     chart_mae_trend,
     chart_prediction_shift,
     chart_rating_histograms,
@@ -128,6 +129,8 @@ def _trend_frame(series: pd.DataFrame, run_date: str, cfg: Config, alert_dates: 
             "band_median": band.median if band else None, "skew_alert": r["run_date"] in alert_dates,
             **{f"{m}_{s}": _num(r.get(f"{m}_{s}")) for m in MODELS for s in ("mae", "mae_lo", "mae_hi")},
             "pred_psi": _num(r.get("pred_psi")), "probe_coverage": _num(r.get("probe_coverage")),
+            **{k: _num(r.get(k)) for k in ("anchor_mae", "anchor_candidate_mae", "anchor_live_mae", "anchor_margin")},
+            "anchor_version": r.get("anchor_version"),
         })
     return pd.DataFrame(rows)
 
@@ -194,10 +197,12 @@ def build_report(run_date: str, cfg: Config, row: Mapping, series: pd.DataFrame,
             "skew_trend": both_widths(chart_skew_trend, trend, unit),
             "prediction_shift": both_widths(chart_prediction_shift, detail, unit),
             "mae_trend": both_widths(chart_mae_trend, trend, unit),
+            "anchor_trend": both_widths(chart_anchor_trend, trend, unit, cfg.gate.anchor_budget),
         },
         "settings": {"baseline_nights": cfg.drift.baseline_nights, "mad_k": cfg.drift.mad_k,
                      "min_baseline_nights": cfg.drift.min_baseline_nights,
                      "skew_margin": cfg.evaluate.skew_margin, "confidence": cfg.evaluate.confidence,
+                     "anchor_budget": cfg.gate.anchor_budget, "anchor_nights": cfg.gate.anchor_nights,
                      "scale": [cfg.scale.min, cfg.scale.max, cfg.scale.step],
                      "labels": {**cfg.labels.model_dump(), "unit_short": cfg.labels.unit_short}},
     }

@@ -26,10 +26,10 @@ from matplotlib.figure import Figure
 from tasks.evaluate.evaluation import MODELS
 
 # Palette (our own): rust for organic ratings, deep teal for probe ratings and the candidate,
-# warm grey for the shadow model, ochre for the live version, a dark berry for alerts.
+# warm grey for the shadow model, ochre for the live version, slate for the anchor, a dark berry for alerts.
 COLOURS = {
     "organic": "#b4532a", "probe": "#1f6b70", "candidate": "#1f6b70", "shadow": "#8b8680",
-    "live": "#c08a1e", "band": "#e9e2d3", "alert": "#8c1d40", "ink": "#2a2d31", "grid": "#dedad2",
+    "live": "#c08a1e", "anchor": "#4a4f7c", "band": "#e9e2d3", "alert": "#8c1d40", "ink": "#2a2d31", "grid": "#dedad2",
 }
 
 #: Font size of every chart text (ticks, labels, legends), in points of the figure.
@@ -190,3 +190,24 @@ def chart_mae_trend(trend: pd.DataFrame, unit: str, narrow: bool = False) -> str
     _night_axis(ax, trend, f"held-out probe MAE ({unit})", narrow)
     return _svg_data_uri(fig)
 
+
+
+@_charting
+def chart_anchor_trend(trend: pd.DataFrame, unit: str, budget: float, narrow: bool = False) -> str | None:
+    """Per night, on the held-out ratings the anchor is scored on: the anchor's MAE, the candidate's and
+    live's on the same rows, and the line the candidate may not cross (anchor + ``budget``)."""
+    if trend.empty or "anchor_mae" not in trend or trend["anchor_mae"].isna().all():
+        return None
+    x = np.arange(len(trend))
+    anchor = trend["anchor_mae"].astype(float).to_numpy()
+    fig = _figure("narrow" if narrow else "trend")
+    ax = fig.add_subplot()
+    ax.fill_between(x, anchor, anchor + budget, color=COLOURS["band"], step="mid", where=~np.isnan(anchor),
+                    label="anchor + budget (gate.anchor_budget)")
+    ax.plot(x, anchor, color=COLOURS["anchor"], marker="s", markersize=3, linewidth=1.4, label="anchor")
+    for key, col in (("live", "anchor_live_mae"), ("candidate", "anchor_candidate_mae")):
+        y = trend[col].astype(float).to_numpy()
+        if not np.isnan(y).all():
+            ax.plot(x, y, color=COLOURS[key], marker="o", markersize=3, linewidth=1.4, label=key)
+    _night_axis(ax, trend, f"held-out probe MAE ({unit})", narrow)
+    return _svg_data_uri(fig)

@@ -7,7 +7,9 @@ backfill resumed after a crash makes exactly the choices an uninterrupted one wo
 
 Rules
 - A date is skipped when its latest nightly or backfill run finished ``done`` or ``skipped`` (too
-  little data), unless ``force``. Failed or interrupted dates run again.
+  little data, an empty day), unless ``force``, or unless its input files or config changed since it was
+  done (the ledger's ``inputs_key``; rows written before that column existed count as unchanged).
+  Failed or interrupted dates run again.
 - ``live="each"``: every night may go live (the promotion gate decides), as nightly runs would have.
   ``live="last"``: only the range's last date may go live; the nights before publish without switching.
 - A backfill never moves the live version back in time: a night whose date is before the live
@@ -28,6 +30,7 @@ from tasks.config import Config
 from tasks import dates
 from tasks.dates import DateError, parse_date
 from tasks.ingest.logs import IngestError, list_partition_dates
+from tasks.ingest.partition import inputs_key
 from tasks.ledger import latest_by_date
 from tasks.lock import is_stale, read_lock
 from tasks.publish.versions import live_version, read_manifest
@@ -89,11 +92,18 @@ def plan_backfill(ws: Workspace, cfg: Config, start: str, end: str, force: bool 
     for d in dates:
         row = latest.loc[d] if d in latest.index else None
         status = None if row is None else row["status"]
-        if status in ("done", "skipped") and not force:
+        changed = None
+        if status == "done" and not force and isinstance(row.get("inputs_key"), str):
+            now = inputs_key(cfg.paths.logs, d, cfg)
+            if now is not None and now != row["inputs_key"]:
+                changed = f"inputs changed since it was done ({_describe(row)}): input files or config differ; re-run"
+        if status in ("done", "skipped") and not force and changed is None:
             what = "done" if status == "done" else f"skipped ({row['message']})"
             plan.append(PlannedNight(d, "skip", f"{what}: {_describe(row)}"))
             continue
-        if status in ("done", "skipped"):
+        if changed is not None:
+            reason = changed
+        elif status in ("done", "skipped"):
             reason = f"--force: re-run (was {status}: {_describe(row)})"
         elif status == "failed":
             reason = f"failed before ({row['message']}); retrying"
@@ -107,7 +117,7 @@ def plan_backfill(ws: Workspace, cfg: Config, start: str, end: str, force: bool 
         if d not in in_logs:
             reason += (f"; no dt={d} partition in {cfg.paths.logs}: " +
                        ("the backfill will stop here (input.missing_partition = 'error')" if stops
-                        else "trains on the stored window only (input.missing_partition = 'skip')"))
+                        else "an empty day, recorded as skipped (input.missing_partition = 'skip')"))
         plan.append(PlannedNight(d, "run", reason, stops))
     return plan
 

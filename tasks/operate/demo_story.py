@@ -19,8 +19,9 @@ dates:
   rate what they love were far more active and rated almost only their favourites. The organic ratings
   of those nights sit much further above the probe ratings than on the nights before: a critical
   skew-shift alert. Probe cards kept running, so the held-out probe ratings still judge every
-  candidate and would promote the campaign nights' ones; ``configs/demo.toml`` sets
-  ``gate.hold_on_alert = "critical"``, so the gate holds them for their alert and the version of the
+  candidate: the first campaign night's is held by the gate's anchor (its steps since the anchor add
+  up past ``gate.anchor_budget``), the second's they would promote; ``configs/demo.toml`` sets
+  ``gate.hold_on_alert = "critical"``, so the gate holds it for its alert and the version of the
   night before the campaign stays live. That is the demo's configuration, not part of the data.
 
 :func:`summary` reads a workspace after the nights ran and lists what a reader should look at: held

@@ -82,8 +82,12 @@ def restore(ws: Workspace, shared: SharedCopy) -> RestoreResult:
 
 
 def is_new(ws: Workspace) -> bool:
-    """A workspace that has never run a night (no ledger): the case where a night restores first."""
-    return not ws.ledger.exists()
+    """A workspace that has never run a night (no ledger, or only ``refused`` rows of runs that gave up
+    waiting for the lock): the case where a night restores first."""
+    if not ws.ledger.exists():
+        return True
+    from tasks.ledger import read_ledger
+    return bool((read_ledger(ws)["status"] == "refused").all())
 
 
 def read_live_predictions(uri: str) -> tuple[str, pa.Table]:

@@ -31,6 +31,7 @@ import pyarrow.parquet as pq
 
 from tasks import failpoints
 from tasks.engine.checkpoint import Checkpoint
+from tasks.evaluate.anchor import PriorVersion
 from tasks.publish.manifest import MANIFEST, file_problems, version_files
 from tasks.schemas import PREDICTIONS
 from tasks.files import atomic_write_json, fsync_dir
@@ -286,14 +287,47 @@ def load_base(ws: Workspace, run_date: str, head: str | None = None, cold: bool 
     return vid, model, shadow
 
 
+def anchor_versions(ws: Workspace, run_date: str, count: int, loaded: dict[str, Checkpoint] | None = None
+                    ) -> tuple[list[PriorVersion], list[str]]:
+    """The versions a night of ``run_date`` may take its anchor from (``gate.anchor_nights`` = ``count``):
+    the ``count`` most recent versions from earlier run dates that were live (now or once) or promoted
+    by the gate, newest first, each with its model loaded; and one line per such version that cannot
+    serve (its files are gone, e.g. deleted by retention, or its model does not load), which is then
+    skipped. Held versions never serve: the gate turned them down. ``loaded``: checkpoints already in
+    memory by version id (the night's base), not loaded twice. Presence and sizes of files are checked,
+    not their sha256 (that is ``tarewise status``'s job; a night must not read every old model twice)."""
+    if count <= 0:
+        return [], []
+    eligible = [m for m in list_versions(ws)
+                if m.get("state") in ("live", "retired", "candidate") and m.get("run_date", "") < run_date]
+    recent = sorted(eligible, key=lambda m: (m.get("run_date", ""), m.get("published_at", ""), m["version_id"]),
+                    reverse=True)[:count]
+    loaded = loaded or {}
+    priors, skipped = [], []
+    for m in recent:
+        vid = m["version_id"]
+        ckpt = loaded.get(vid)
+        if ckpt is None:
+            problems = version_problems(ws, vid, check_sha=False)
+            if not problems:
+                ckpt, bad = load_checkpoint_checked(ws, vid, "model")
+                problems = [bad or f"{ws.versions / vid / 'model'} is missing"] if ckpt is None else []
+            if problems:
+                skipped.append(f"{vid}: {'; '.join(problems)}")
+                continue
+        priors.append(PriorVersion(vid, str(m.get("run_date", "")), ckpt))
+    return priors, skipped
+
+
 def _newest_first(manifests: list[dict]) -> list[dict]:
     return sorted(manifests, key=lambda m: (m.get("published_at", ""), m["version_id"]), reverse=True)
 
 
 def prune(ws: Workspace, keep: int, pinned: tuple[str, ...] = ()) -> list[str]:
     """Delete all but the ``keep`` most recently published versions; never the live one, a pinned one,
-    or the live version's base (needed to re-run the live version's date identically). Returns the
-    deleted ids, oldest first.
+    the live version's base (needed to re-run the live version's date identically), or the anchor the
+    most recently published version was judged against (``metrics.anchor``: a run of held nights must
+    not delete the anchor that holds them). Returns the deleted ids, oldest first.
 
     "Most recently published", not "latest run date": a re-run or backfill of old dates publishes
     versions that are new work, and the next night of a backfill warm-starts from the one just
@@ -310,6 +344,11 @@ def prune(ws: Workspace, keep: int, pinned: tuple[str, ...] = ()) -> list[str]:
         base = read_manifest(ws, live).get("base_version")
         if base:
             protect.add(base)
+    readable = [m for m in manifests if m.get("state") != "damaged"]
+    if readable:   # the anchor the newest night was judged against: the next night needs it too
+        anchor = ((_newest_first(readable)[0].get("metrics") or {}).get("anchor") or {}).get("version_id")
+        if anchor:
+            protect.add(anchor)
     newest = {m["version_id"] for m in _newest_first(manifests)[:keep]}
     deleted = []
     for m in manifests:

@@ -11,6 +11,7 @@ import pytest
 
 from handmade import model_errors
 from tasks.config import GateConfig
+from tasks.evaluate.anchor import AnchorComparison
 from tasks.evaluate.evaluation import Evaluation
 from tasks.evaluate.gate import baseline, decide
 
@@ -147,3 +148,107 @@ def test_require_approval_holds_a_passing_candidate_awaiting_approval():
                  decide(PASSING, gate.model_copy(update={"hold_on_alert": "critical"}), SKEW)):
         assert not held.promote and not held.awaiting_approval and "awaiting approval" not in held.reason
         assert "awaiting_approval" not in held.to_dict()
+
+
+# --------------------------------------------------------------------------------------------------
+# The anchor's cumulative budget (rule 3) and "no segment worse than doing nothing" (rule 5)
+# --------------------------------------------------------------------------------------------------
+
+def _anchor(cand: float, anchor: float, n: int = 120, vid: str = "v20261101-1", is_live: bool = False,
+            compared: int = 3) -> AnchorComparison:
+    return AnchorComparison(version_id=vid, run_date="2026-11-01", n=n, mae=anchor, candidate_mae=cand,
+                            is_live=is_live, compared=compared)
+
+
+def _chain(steps: list[float], cfg: GateConfig, start: float = 0.80) -> list[bool]:
+    """Nights in a row, each candidate ``step`` worse than live on the same held-out ratings (every
+    version scored on them exactly as it scored the night it was judged). A promoted candidate becomes
+    live and joins the versions the anchor is chosen from (the last ``cfg.anchor_nights`` of them)."""
+    promoted_maes = [start]            # the first live version
+    decisions = []
+    for step in steps:
+        live = promoted_maes[-1]
+        cand = live + step
+        recent = promoted_maes[-cfg.anchor_nights:] if cfg.anchor_nights else []
+        anchor = _anchor(cand, min(recent)) if recent else None
+        d = decide(Evaluation(model_errors(cand), live=model_errors(live), anchor=anchor), cfg)
+        decisions.append(d.promote)
+        if d.promote:
+            promoted_maes.append(cand)
+    return decisions
+
+
+def test_five_small_steps_down_are_held_by_the_anchor_where_the_one_step_rule_passes_them():
+    small = [0.008] * 5                                   # 0.04 stars down in all, each step within 0.01
+    one_step = GateConfig(tolerance_mae=0.01, min_heldout=10, anchor_nights=0)
+    anchored = GateConfig(tolerance_mae=0.01, min_heldout=10, anchor_nights=14, anchor_budget=0.01)
+    assert _chain(small, one_step) == [True] * 5          # the neighbour rule lets all five through
+    assert _chain([0.04], one_step) == [False]            # ... but not the same decline in one step
+    assert _chain([0.04], anchored) == [False]
+    # With the budget: the first step passes (0.008 <= 0.01), the second adds up to 0.016 and is held;
+    # live stays put, so every later step is judged against the same anchor and held too.
+    assert _chain(small, anchored) == [True, False, False, False, False]
+
+
+def test_anchor_budget_bounds_the_total_decline_of_what_goes_live():
+    cfg = GateConfig(tolerance_mae=0.01, min_heldout=10, anchor_nights=14, anchor_budget=0.01)
+    steps = [0.003] * 12
+    decisions = _chain(steps, cfg)
+    live_decline = sum(s for s, ok in zip(steps, decisions) if ok)
+    assert decisions[:3] == [True] * 3 and not decisions[3]     # 0.009 passes, 0.012 does not
+    assert live_decline <= cfg.anchor_budget + 1e-12
+
+
+def test_within_the_anchor_budget_promotes_and_names_the_anchor():
+    d = decide(Evaluation(model_errors(0.805), live=model_errors(0.80), anchor=_anchor(0.805, 0.797)), GATE)
+    assert d.promote
+    assert d.reason == ("held-out MAE 0.8050 vs live 0.8000: within tolerance; vs anchor v20261101-1 0.7970 "
+                        "on 120 ratings: +0.0080")
+
+
+def test_beyond_the_anchor_budget_holds_naming_anchor_rows_and_key():
+    d = decide(Evaluation(model_errors(0.805), live=model_errors(0.80), anchor=_anchor(0.806, 0.79, n=97)), GATE)
+    assert (d.promote, d.compared_to) == (False, "live")
+    assert ("held-out MAE 0.8060 worse than the anchor v20261101-1 (the strongest of the last 3 versions) 0.7900 "
+            "on the same 97 ratings by 0.0160, more than gate.anchor_budget=0.01") in d.reason
+    live_anchor = _anchor(0.806, 0.79, is_live=True)
+    assert "(the live version itself)" in decide(Evaluation(model_errors(0.805), live=model_errors(0.80),
+                                                            anchor=live_anchor), GATE).reason
+
+
+def test_anchor_budget_edge_is_inclusive_and_no_anchor_is_not_judged():
+    cfg = GateConfig(tolerance_mae=0.01, min_heldout=10, anchor_budget=0.0)
+    assert decide(Evaluation(model_errors(0.80), live=model_errors(0.80), anchor=_anchor(0.80, 0.80)), cfg).promote
+    assert not decide(Evaluation(model_errors(0.80), live=model_errors(0.80), anchor=_anchor(0.8000001, 0.80)),
+                      cfg).promote
+    assert decide(Evaluation(model_errors(0.80), live=model_errors(0.80), anchor=None), cfg).promote
+
+
+def test_live_rule_is_judged_before_the_anchor():
+    d = decide(Evaluation(model_errors(0.90), live=model_errors(0.80), anchor=_anchor(0.90, 0.70)), GATE)
+    assert "worse than live 0.8000" in d.reason and "anchor" not in d.reason
+
+
+def test_a_segment_worse_than_the_plain_shadow_holds_even_when_live_is_as_bad():
+    # live and candidate are both 0.15 worse than doing nothing on 'down': the live comparison passes it
+    cand = model_errors(0.80, segments={"down": (0.95, 30), "up": (0.70, 30)})
+    live = model_errors(0.80, segments={"down": (0.95, 30), "up": (0.72, 30)})
+    shadow = model_errors(0.90, segments={"down": (0.80, 30), "up": (1.00, 30)})
+    d = decide(Evaluation(cand, shadow=shadow, live=live), GATE)
+    assert (d.promote, d.compared_to) == (False, "live")
+    assert d.reason == ("segment 'down' MAE 0.9500 worse than the plain shadow model 0.8000 by more than "
+                        "gate.max_segment_regression=0.05: no segment may be worse than doing nothing "
+                        "(gate.segments_vs_shadow = \"hold\")")
+    noted = decide(Evaluation(cand, shadow=shadow, live=live), GateConfig(min_heldout=10, segments_vs_shadow="note"))
+    assert noted.promote and noted.reason.endswith(
+        "segment 'down' MAE 0.9500 worse than the plain shadow model 0.8000 by more than "
+        "gate.max_segment_regression=0.05, which does not hold it (gate.segments_vs_shadow = \"note\")")
+
+
+def test_segments_against_the_shadow_follow_the_segment_tolerance_and_row_minimum():
+    live = model_errors(0.80, segments={"down": (0.95, 30)})
+    within = model_errors(0.80, segments={"down": (0.95, 30)})
+    assert decide(Evaluation(within, shadow=model_errors(0.9, segments={"down": (0.90, 30)}), live=live), GATE).promote
+    few = model_errors(0.9, segments={"down": (0.50, 9)})       # 9 < gate.min_heldout: not judged
+    assert decide(Evaluation(within, shadow=few, live=live), GATE).promote
+    assert decide(Evaluation(within, shadow=None, live=live), GATE).promote   # no shadow tonight

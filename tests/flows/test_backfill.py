@@ -43,6 +43,7 @@ bootstrap = 20
 
 [gate]
 tolerance_mae = 0.5
+anchor_budget = 0.5
 max_segment_regression = 1.0
 
 [retention]
@@ -217,14 +218,15 @@ def test_second_run_refused_while_another_process_holds_the_lock(prefect_harness
         from flows.backfill import backfill
         from tasks.lock import LockHeld
         with pytest.raises(LockHeld, match="locked by a nightly run for 2026-11-01"):
-            backfill(cfg=_cfg(history, ws.root), start=DATES[0], end=DATES[1])
+            backfill(cfg=_cfg(history, ws.root, **{"runtime.lock_wait_seconds": 0}), start=DATES[0], end=DATES[1])
     finally:
         holder.kill()
         holder.wait()
     assert result.exit_code == 1
     assert "backfill refused" in result.output and "locked by a nightly run for 2026-11-01" in result.output
     assert f"pid {holder.pid}" in result.output
-    assert ledger.read_ledger(ws).empty and versions.live_version(ws) is None
+    # The CLI refused before any flow ran; the flow's refusal (lock_wait_seconds = 0 here) is one ledger row.
+    assert ledger.read_ledger(ws)["status"].tolist() == ["refused"] and versions.live_version(ws) is None
 
 
 def test_thin_date_is_skipped_and_next_night_starts_cold(prefect_harness, history, tmp_path):

@@ -53,9 +53,20 @@ def test_versions_table_fills_missing_metrics_and_gate_fields() -> None:
             "gate": {"promote": True, "compared_to": "none", "reason": "first version"}}
     bare = {"version_id": "v0", "state": "retired"}
     table, reasons = versions_table([full, bare], "versions in /ws")
-    assert rows(table) == [["v1", "live", "2026-11-01", "calibrated", "0.8123", "0.9000", "-", "promote vs none"],
-                           ["v0", "retired", "", "", "-", "-", "-", "hold vs ?"]]
+    assert rows(table) == [["v1", "live", "2026-11-01", "calibrated", "0.8123", "0.9000", "-", "-", "promote vs none"],
+                           ["v0", "retired", "", "", "-", "-", "-", "-", "hold vs ?"]]
     assert reasons == ["v1: first version", "v0: "]
+
+
+def test_versions_table_shows_the_candidates_margin_over_its_anchor() -> None:
+    anchored = {"version_id": "v20261103-1", "state": "held", "run_date": "2026-11-03", "method": "per_user",
+                "metrics": {"candidate": {"mae": 0.82}, "live": {"mae": 0.815},
+                            "anchor": {"version_id": "v20261101-1", "mae": 0.80, "candidate_mae": 0.8123,
+                                       "margin": 0.0123, "n": 97}},
+                "gate": {"promote": False, "compared_to": "live", "reason": "worse than the anchor"}}
+    table, _ = versions_table([anchored], "versions in /ws")
+    assert [c.header for c in table.columns][7] == "vs anchor"
+    assert rows(table)[0][7] == "+0.0123 v20261101-1"
 
 
 def test_runs_table_colours_status_and_shortens_long_messages() -> None:

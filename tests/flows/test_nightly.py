@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 import shutil
+import time
 
 import numpy as np
 import pandas as pd
@@ -11,6 +12,8 @@ import pyarrow.parquet as pq
 import pytest
 
 from tasks.ingest.store import read_window
+from conftest import REPO
+from tasks import ledger
 from tasks.ledger import read_ledger
 from tasks.publish import versions
 from tasks.workspace import Workspace
@@ -61,7 +64,8 @@ def test_three_nights_publish_three_versions_with_sane_outputs(three_nights):
         assert row["message"] == out["gate"]["reason"] and row["rows_ingested"] == out["counts"]["rows_ingested"]
         assert json.loads(row["durations_json"]) == out["durations"]
         # the report stage starts before the gate (tonight's metrics and alerts) and ends after publishing
-        assert list(out["durations"]) == ["ingest", "window", "train", "evaluate", "report", "predict", "publish"]
+        assert list(out["durations"]) == ["ingest", "window", "train", "evaluate", "anchor", "report", "predict",
+                                         "publish"]
 
 
 def test_debiased_candidate_beats_plain_shadow_on_demo(three_nights):
@@ -80,7 +84,13 @@ def test_rerun_same_date_gives_identical_predictions_and_no_duplicate_rows(prefe
     nightly(cfg=demo_cfg, run_date=DATES[0])
     first = nightly(cfg=demo_cfg, run_date=DATES[1])
     rows_before = len(read_window(ws, DATES[1], demo_cfg.window.days))
-    second = nightly(cfg=demo_cfg, run_date=DATES[1])
+    live_before, ledger_rows = versions.live_version(ws), len(ledger.read_ledger(ws))
+    # Triggered again with the same inputs: nothing runs, one line says so, no ledger row, live unchanged.
+    again = nightly(cfg=demo_cfg, run_date=DATES[1])
+    assert again["status"] == "unchanged" and again["version_id"] == first["version_id"]
+    assert "already done with the same inputs" in again["message"] and "--force" in again["message"]
+    assert len(ledger.read_ledger(ws)) == ledger_rows and versions.live_version(ws) == live_before
+    second = nightly(cfg=demo_cfg, run_date=DATES[1], force=True)
     assert first["version_id"] != second["version_id"]
     a = pq.read_table(ws.versions / first["version_id"] / "predictions.parquet").to_pandas()
     b = pq.read_table(ws.versions / second["version_id"] / "predictions.parquet").to_pandas()
@@ -88,6 +98,22 @@ def test_rerun_same_date_gives_identical_predictions_and_no_duplicate_rows(prefe
     assert len(read_window(ws, DATES[1], demo_cfg.window.days)) == rows_before
     stored = pq.read_table(ws.store).to_pandas()
     assert not stored.duplicated(["user_id", "item_id", "source", "event_time"]).any()
+
+
+def test_changed_inputs_rerun_a_done_night(prefect_harness, demo_cfg, tmp_path):
+    """The same date triggered again after its input file changed (a corrected upload) runs again."""
+    from flows.nightly import nightly
+
+    logs = tmp_path / "logs"
+    _copy_logs(REPO / "sample_parquet", logs, DATES[:1])
+    cfg = demo_cfg.with_overrides(logs=str(logs))
+    first = nightly(cfg=cfg, run_date=DATES[0])
+    part = next((logs / f"dt={DATES[0]}").glob("*.parquet"))
+    df = pd.read_parquet(part)
+    df.iloc[: len(df) - 1].to_parquet(part, index=False)     # one row fewer
+    second = nightly(cfg=cfg, run_date=DATES[0])
+    assert second["status"] == "done" and second["version_id"] != first["version_id"]
+    assert second["counts"]["rows_read"] == first["counts"]["rows_read"] - 1
 
 
 def _copy_logs(src, dst, dates):
@@ -136,10 +162,42 @@ def test_too_many_rejected_rows_fails_before_training_and_quarantines(prefect_ha
 
 def test_run_refused_while_another_holds_the_lock(prefect_harness, demo_cfg):
     from flows.nightly import nightly
-    from tasks.lock import LockHeld, workspace_lock
+    from tasks.lock import LockWaitExpired, workspace_lock
 
     ws = Workspace.at(demo_cfg.paths.workspace)
+    cfg = demo_cfg.updated({"runtime.lock_wait_seconds": 2})
+    t0 = time.monotonic()
     with workspace_lock(ws.lock, "a manual run", 3600):
-        with pytest.raises(LockHeld, match="locked by a manual run"):
-            nightly(cfg=demo_cfg, run_date=DATES[0])
+        with pytest.raises(LockWaitExpired, match="gave up after waiting 2 s .*locked by a manual run"):
+            nightly(cfg=cfg, run_date=DATES[0])
+    assert time.monotonic() - t0 >= 2            # it waited the stated time first
     assert versions.live_version(ws) is None
+    row = read_ledger(ws).iloc[-1]                # the refusal is in the ledger, not only in Prefect
+    assert (row["status"], row["run_date"], row["kind"]) == ("refused", DATES[0], "nightly")
+    assert "runtime.lock_wait_seconds" in row["message"] and row["flow_run_id"]
+
+
+def test_nightly_waits_for_a_backfill_holding_the_lock_then_runs(prefect_harness, demo_cfg):
+    """A nightly started while another run holds the lock waits for it instead of failing."""
+    import threading
+
+    from flows.nightly import nightly
+    from tasks.lock import workspace_lock
+
+    ws = Workspace.at(demo_cfg.paths.workspace)
+    cfg = demo_cfg.updated({"runtime.lock_wait_seconds": 120})
+    held, release = threading.Event(), threading.Event()
+
+    def holder():
+        with workspace_lock(ws.lock, "backfill 2026-10-01..2026-10-31", 3600):
+            held.set()
+            release.wait(60)
+
+    t = threading.Thread(target=holder)
+    t.start()
+    held.wait(10)
+    threading.Timer(3.0, release.set).start()
+    t0 = time.monotonic()
+    out = nightly(cfg=cfg, run_date=DATES[0])
+    t.join()
+    assert out["status"] == "done" and time.monotonic() - t0 >= 3

@@ -24,6 +24,7 @@ import pytest
 
 from handmade import model_errors
 from tasks.config import LabelsConfig
+from tasks.evaluate.anchor import AnchorComparison
 from tasks.evaluate.evaluation import Evaluation
 from tasks.monitor.alert_delivery import Channels
 from tasks.monitor.alert_history import AlertHistory, append_history, night_alerts, read_history
@@ -64,7 +65,11 @@ def stored_nights(ws, cfg):
         window = pd.concat(frames, ignore_index=True)
         live = None if i == 0 else rng.normal(3.5, 0.5, 500)
         evaluation = Evaluation(candidate=model_errors(0.8 - 0.01 * i, segments={"up": (0.9, 30), "neutral": (0.7, 40)}),
-                                shadow=model_errors(0.82, rmse=1.02), live=None if i == 0 else model_errors(0.81))
+                                shadow=model_errors(0.82, rmse=1.02), live=None if i == 0 else model_errors(0.81),
+                                # from the second night on, the anchor (the first version) on 110 of the 120 rows
+                                anchor=None if i == 0 else AnchorComparison(
+                                    "v-2024-06-01", DATES[0], n=110, mae=0.79, candidate_mae=0.801 - 0.01 * i,
+                                    live_mae=0.805, is_live=i == 1, compared=i))
         row = compute_night_metrics(
             date, window, cfg.scale, cfg.evaluate.skew_margin,
             probe_errors=pd.Series(rng.gamma(4.0, 0.2, 40)), reference_shares=[0.1, 0.14],
@@ -101,7 +106,21 @@ def test_report_escapes_ids_and_carries_the_numbers(stored_nights, cfg):
     row = row_of(read_metrics(stored_nights), DATES[-1], stored_nights.metrics)
     assert f"{row['skew_mean_shift']:+.3f}" in html
     assert "skew_shift" in html and "probe_coverage_low" in html
-    assert html.count('src="data:image/svg+xml;base64,') == 4  # histograms, skew trend, predictions, MAE
+    # histograms, skew trend, predictions, MAE, MAE against the anchor
+    assert html.count('src="data:image/svg+xml;base64,') == 5
+
+
+def test_report_shows_the_candidate_against_the_anchor_in_one_line_and_a_chart(stored_nights, cfg):
+    html = render_report(stored_nights, DATES[-1], cfg)[0].read_text(encoding="utf-8")
+    line = re.sub(r"<[^>]+>", "", re.search(r'<p class="anchor-line">(.*?)</p>', html, re.S).group(1))
+    assert line == ("Tonight the candidate's held-out MAE is 0.7310 against 0.7900 for the anchor v-2024-06-01 "
+                    "(the strongest of the last 7 versions, from 2024-06-01) on the same 110 ratings: "
+                    "-0.0590 ★; the gate holds beyond +0.010 (gate.anchor_budget).".replace("★", cfg.labels.unit_short))
+    assert 'alt="Line chart: held-out probe MAE per night of the anchor' in html
+    twin = json.loads(render_report(stored_nights, DATES[-1], cfg)[1].read_text(encoding="utf-8"))
+    assert [t["anchor_margin"] for t in twin["trend"]][:2] == [None, pytest.approx(0.801 - 0.01 - 0.79)]
+    first = render_report(stored_nights, DATES[0], cfg)[0].read_text(encoding="utf-8")
+    assert "No anchor tonight" in first and "No anchor comparisons recorded." in first
 
 
 def test_report_is_self_contained(stored_nights, cfg):

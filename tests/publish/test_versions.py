@@ -128,3 +128,51 @@ def test_a_damaged_manifest_is_named_and_listed_as_damaged(two) -> None:
     assert states == {first: "damaged", live: "live"}
     with pytest.raises(versions.VersionError, match="is damaged"):
         versions.base_for_date(ws, "2026-11-02")     # the walk from live reaches the damaged one
+
+
+def test_anchor_versions_are_recent_live_or_promoted_ones_from_earlier_dates_whose_models_load(tmp_path) -> None:
+    ws = Workspace.at(tmp_path / "ws")
+    v1 = publish_night(ws, "2026-11-01")
+    v2 = publish_night(ws, "2026-11-02", seed=6)
+    held = publish_night(ws, "2026-11-03", live=False, seed=7, gate={"promote": False, "reason": "held"})
+    promoted = publish_night(ws, "2026-11-04", live=False, seed=8,     # promoted, never switched live
+                             gate={"promote": True, "reason": "within tolerance"})
+    later = publish_night(ws, "2026-11-06", seed=9)
+    priors, skipped = versions.anchor_versions(ws, "2026-11-05", 14)
+    # newest first; the held one never serves (the gate turned it down), nor one from tonight or later
+    assert [p.version_id for p in priors] == [promoted, v2, v1] and skipped == []
+    assert held not in {p.version_id for p in priors} and later not in {p.version_id for p in priors}
+    assert [p.version_id for p in versions.anchor_versions(ws, "2026-11-05", 2)[0]] == [promoted, v2]
+    assert versions.anchor_versions(ws, "2026-11-05", 0) == ([], [])
+    assert versions.anchor_versions(ws, "2026-11-01", 14) == ([], [])    # first night: nothing earlier
+    # a checkpoint already in memory (the night's base) is used, not loaded again
+    base = versions.load_checkpoint(ws, v2)
+    assert next(p for p in versions.anchor_versions(ws, "2026-11-05", 14, loaded={v2: base})[0]
+                if p.version_id == v2).checkpoint is base
+
+
+def test_an_anchor_version_whose_files_are_gone_is_skipped_with_the_path(tmp_path) -> None:
+    ws = Workspace.at(tmp_path / "ws")
+    v1 = publish_night(ws, "2026-11-01")
+    v2 = publish_night(ws, "2026-11-02", seed=6)
+    (ws.versions / v1 / "model" / "model.pt").unlink()
+    priors, skipped = versions.anchor_versions(ws, "2026-11-03", 14)
+    assert [p.version_id for p in priors] == [v2]
+    assert len(skipped) == 1 and skipped[0].startswith(f"{v1}: ") and "model.pt is missing" in skipped[0]
+
+
+def test_retention_keeps_the_anchor_the_newest_night_was_judged_against(tmp_path) -> None:
+    ws = Workspace.at(tmp_path / "ws")
+    v1 = publish_night(ws, "2026-11-01")
+    v2 = publish_night(ws, "2026-11-02", seed=6)
+    v3 = publish_night(ws, "2026-11-03", seed=7)              # live; its base v2 is kept anyway
+    v4 = publish_night(ws, "2026-11-04", live=False, seed=8, gate={"promote": False, "reason": "anchor"})
+    path = ws.versions / v4 / "manifest.json"
+    manifest = json.loads(path.read_text())
+    manifest["metrics"] = {"anchor": {"version_id": v1, "margin": 0.02}}
+    path.write_text(json.dumps(manifest))
+    assert versions.prune(ws, keep=1) == []                   # v1: the anchor that held v4
+    assert {v1, v2, v3, v4} <= {p.name for p in ws.versions.iterdir()}
+    manifest["metrics"] = {}
+    path.write_text(json.dumps(manifest))
+    assert versions.prune(ws, keep=1) == [v1]
