@@ -35,7 +35,7 @@ import shutil
 import subprocess
 import sys
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 import numpy as np
@@ -324,6 +324,7 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--parts", default="chain+cold", choices=("chain+cold", "chain", "cold"),
                     help="run the chains, the cold runs, or both (two processes can split them)")
     ap.add_argument("--resume", action="store_true", help="keep earlier chain workspaces under --work")
+    ap.add_argument("--at", default="", help="comma-separated checkpoint nights (default: the preset's)")
     ap.add_argument("--out", default="")
     ap.add_argument("--merge", default="", help="comma-separated .csv files of earlier runs (one per seed, each "
                     "with its .facts.json): write their combined table instead of running")
@@ -340,6 +341,8 @@ def main(argv: list[str] | None = None) -> int:
         print(text)
         return 0
     preset = PRESETS[args.preset]
+    if args.at:
+        preset = replace(preset, at=tuple(int(x) for x in args.at.split(",")))
     seeds = ([int(s) for s in args.seed_list.split(",")] if args.seed_list
              else list(range(args.seeds if args.seeds is not None else preset.seeds)))
     methods = (METHODS if args.methods == "all" else {} if args.methods == "none"
