@@ -289,9 +289,11 @@ def table(df: pd.DataFrame, dataset: str, preset: str, facts: list[dict]) -> str
     lines = [f"### Long run: {dataset}, preset {preset}, {len(seeds)} seed(s) ({', '.join(map(str, seeds))})", "",
              "MAE on the hidden MAR test (mean ± std over seeds); gap closed = (plain − m) / (plain − oracle) "
              "with plain and oracle fitted cold on the same night's window. `chain` = the live version after "
-             "`tarewise backfill --live each` over every night so far; `cold` = `tarewise run --cold` on the "
-             "same store and date; s/night = wall seconds per night of the command (shared 2-core machine).", "",
-             "| night | what ran | MAE | gap closed | " + " | ".join(f"MAE {g}" for g in GROUPS) + " | s/night |",
+             "`tarewise backfill --live each` over every night so far (held nights leave live where it was; the "
+             "next night warm-starts from live); `cold` = `tarewise run --cold` in an empty workspace on the "
+             "same ratings (the window as one partition); s = wall seconds per night of the chain, per run "
+             "otherwise (shared 2-core machine).", "",
+             "| night | what ran | MAE | gap closed | " + " | ".join(f"MAE {g}" for g in GROUPS) + " | s |",
              "|---|---|---|---|" + "---|" * len(GROUPS) + "---|"]
     for night in sorted(df["night"].unique()):
         d = df[df["night"] == night]
