@@ -196,7 +196,8 @@ def cold_run(label: str, over: dict, store_from: Path | None, logs: Path, day: i
 
 def run_seed(dataset: str, seed: int, preset: Preset, chains: list[str], methods: dict[str, dict], work: Path,
              say=print, truth: np.ndarray | None = None, partial: Path | None = None,
-             parts: tuple[str, ...] = ("chain", "cold"), resume: bool = False) -> tuple[list[dict], dict]:
+             parts: tuple[str, ...] = ("chain", "cold"), resume: bool = False,
+             only_methods: bool = False) -> tuple[list[dict], dict]:
     """Every row (chain / cold / plain / oracle per checkpoint night) for one seed, and chain facts.
     ``parts``: the chains, the cold runs, or both (they share nothing but the data, so two processes can
     run them side by side). ``resume``: keep ``work``'s earlier chain workspaces (a backfill skips the
@@ -233,10 +234,12 @@ def run_seed(dataset: str, seed: int, preset: Preset, chains: list[str], methods
             # date): an empty workspace, one `run --cold`, the same ratings the chain's store holds.
             wlog = work / f"window-logs-{day}"
             write_window_logs(world, wlog, day)
-            for m_label, m_over in (("cold: default", {}), ("plain", {"debias.method": "plain"}),
-                                    *((f"cold: {k}", v) for k, v in methods.items() if day == preset.at[-1])):
+            refs = () if only_methods else (("cold: default", {}), ("plain", {"debias.method": "plain"}))
+            for m_label, m_over in (*refs, *((f"cold: {k}", v) for k, v in methods.items() if day == preset.at[-1])):
                 keep(cold_run(m_label, m_over, None, wlog, day, world, base, work, test, log))
                 say(f"{dataset} seed {seed} night {day} {m_label}: MAE {rows[-1]['mae']:.4f}")
+            if only_methods:
+                continue
             olog = work / f"oracle-logs-{day}"
             write_oracle_logs(world, olog, day)
             keep(cold_run("oracle", {"debias.method": "plain"}, None, olog, day, world, base, work, test, log))
@@ -326,6 +329,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--parts", default="chain+cold", choices=("chain+cold", "chain", "cold"),
                     help="run the chains, the cold runs, or both (two processes can split them)")
     ap.add_argument("--resume", action="store_true", help="keep earlier chain workspaces under --work")
+    ap.add_argument("--only-methods", action="store_true", help="cold runs of --methods only (no default, plain, "
+                    "oracle: merge with a run that has them)")
     ap.add_argument("--at", default="", help="comma-separated checkpoint nights (default: the preset's)")
     ap.add_argument("--out", default="")
     ap.add_argument("--merge", default="", help="comma-separated .csv files of earlier runs (one per seed, each "
@@ -356,7 +361,7 @@ def main(argv: list[str] | None = None) -> int:
     for seed in seeds:
         r, f = run_seed(args.dataset, seed, preset, chains, methods, work, truth=truth,
                         partial=work / f"partial-{args.dataset}-s{seed}-{args.parts}.csv",
-                        parts=tuple(args.parts.split("+")), resume=args.resume)
+                        parts=tuple(args.parts.split("+")), resume=args.resume, only_methods=args.only_methods)
         rows += r
         facts.append({"seed": seed, **f})
     df = add_gap(pd.DataFrame(rows))
