@@ -16,6 +16,7 @@ from tasks.config import Config
 from tasks.dates import parse_date, yesterday
 from tasks.engine.checkpoint import Checkpoint
 from tasks.evaluate.gate import decide
+from tasks.evaluate.probe_plan import PLANS_DIR, uniform_heldout
 from tasks.evaluate.segments import user_skew_segments
 from tasks.ingest.logs import IngestResult
 from tasks.ingest.partition import inputs_key
@@ -128,9 +129,11 @@ def _work(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool,
         cand, shadow = trained.candidate, trained.shadow.checkpoint if trained.shadow else None
         with night.stage("evaluate"):
             segments = user_skew_segments(window, cfg.evaluate.skew_margin)
-            night.evaluation = steps.evaluate(cfg, cand.probe_heldout, segments, cand.checkpoint, shadow, base)
+            # probe ratings of members a probe plan picked are not judged on (tasks/evaluate/probe_plan.py)
+            heldout, _ = uniform_heldout(cand.probe_heldout, window, ws.root / PLANS_DIR)
+            night.evaluation = steps.evaluate(cfg, heldout, segments, cand.checkpoint, shadow, base)
         with night.stage("anchor"):   # the strongest recent version on the same held-out ratings (gate rule 3)
-            night.evaluation = steps.compare_with_anchor(cfg, run_date, night.evaluation, cand.probe_heldout,
+            night.evaluation = steps.compare_with_anchor(cfg, run_date, night.evaluation, heldout,
                                                          cand.checkpoint, base_id, base)
         with night.stage("report"):   # tonight's metrics and alert rules come first: the gate may hold on an alert
             version_id = versions.new_version_id(ws, run_date)

@@ -245,6 +245,20 @@ class GateConfig(_Section):
                                    "`tarewise reject` turns it down); both are recorded in the run ledger.")
 
 
+class ProbeConfig(_Section):
+    """The random probe's budget and plan (`tarewise probe-budget`, `tarewise probe-plan`)."""
+    plan_uniform_share: float = Field(0.3, ge=0.0, le=1.0, description="Share of a probe plan's members drawn "
+                                      "uniformly at random (the rest are chosen by expected error reduction); it "
+                                      "keeps the probe's estimates of the whole population honest.")
+    plan_activity_power: float = Field(1.0, ge=0.0, le=2.0, description="How much a member's activity weighs "
+                                       "in a probe plan's score: (organic ratings + 1) to this power; 0 = every "
+                                       "member's predictions count the same.")
+    budget_regression: float = Field(0.02, gt=0.0, description="Regression of the held-out MAE (rating units) "
+                                     "the probe budget asks the gate to detect.")
+    budget_power: float = Field(0.8, gt=0.0, lt=1.0, description="How often the gate should detect it "
+                                "(the probe budget names the nightly count that reaches this).")
+
+
 class PublishConfig(_Section):
     top_n: int = Field(20, ge=1, le=10_000, description="Predictions per user (unrated items, best first).")
 
@@ -409,6 +423,7 @@ class Config(_Section):
     debias: DebiasConfig = DebiasConfig()
     evaluate: EvaluateConfig = EvaluateConfig()
     gate: GateConfig = GateConfig()
+    probe: ProbeConfig = ProbeConfig()
     publish: PublishConfig = PublishConfig()
     retention: RetentionConfig = RetentionConfig()
     runtime: RuntimeConfig = RuntimeConfig()

@@ -125,3 +125,15 @@ NIGHTLY_METRICS = pa.schema([
     pa.field("active_users", _I64), pa.field("probe_users", _I64), pa.field("probe_coverage", _F64),
     pa.field("detail_json", pa.string()),
 ])
+
+#: A probe plan (`tarewise probe-plan`): the members to show the probe card to on one date. The plan
+#: chooses people, never items. ``drawn_by``: "planned" (highest expected error reduction) or "uniform"
+#: (the uniform share); ``draw_probability``: the chance this member was chosen (1 for planned ones), for
+#: reweighting held-out errors; ``score``: expected reduction of error variance, squared rating units.
+PROBE_PLAN = pa.schema([
+    pa.field("member_id", pa.string(), nullable=False),
+    pa.field("reason", pa.string(), nullable=False),
+    pa.field("score", pa.float64(), nullable=False),
+    pa.field("drawn_by", pa.string(), nullable=False),
+    pa.field("draw_probability", pa.float64(), nullable=False),
+])

@@ -13,6 +13,8 @@ Layout under the workspace root (all created on demand)::
     alerts/history.jsonl                 every alert ever raised, with delivery outcome
     lock                                 store lock (one run at a time)
     shared-copy.json                     what was copied to the shared copy (tasks/operate/shared_copy.py)
+    probe-plans/YYYY-MM-DD.parquet       probe plans (tarewise probe-plan); nights leave their planned
+                                         members' probe ratings out of the held-out set
     sweeps/<start>_<end>/s<k>/           scratch workspaces of a settings sweep (tasks/operate/sweep.py)
 """
 

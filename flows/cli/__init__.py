@@ -2,9 +2,9 @@
 
 The commands live by concern: ``nights.py`` (run, demo, backfill and its sweep), ``read_only.py``
 (score, versions, report, status), ``operations.py`` (rollback, approve, reject, prune, share, restore,
-serve); what they share is in ``common.py``, the checks made before anything starts in ``preflight.py``,
-the printed tables in ``tables.py``, the backfill's progress bar in ``progress.py``. They are registered
-here, in the order ``tarewise --help`` lists them.
+serve), ``probe.py`` (probe-budget, probe-plan); what they share is in ``common.py``, the checks made
+before anything starts in ``preflight.py``, the printed tables in ``tables.py``, the backfill's progress
+bar in ``progress.py``. They are registered here, in the order ``tarewise --help`` lists them.
 """
 
 from __future__ import annotations
@@ -14,7 +14,7 @@ import sys
 import typer
 from typer.core import TyperCommand, TyperGroup
 
-from flows.cli import nights, operations, read_only
+from flows.cli import nights, operations, probe, read_only
 
 
 def _flags_as_flags(params: list) -> list:
@@ -80,7 +80,8 @@ for _name, _fn in (("run", nights.run), ("score", read_only.score), ("versions",
                    ("report", read_only.report), ("demo", nights.demo), ("backfill", nights.backfill),
                    ("status", read_only.status), ("rollback", operations.rollback), ("approve", operations.approve),
                    ("reject", operations.reject), ("prune", operations.prune),
-                   ("share", operations.share), ("restore", operations.restore), ("serve", operations.serve)):
+                   ("share", operations.share), ("restore", operations.restore), ("serve", operations.serve),
+                   ("probe-budget", probe.probe_budget), ("probe-plan", probe.probe_plan)):
     app.command(_name, cls=_Command)(_fn)
 
 

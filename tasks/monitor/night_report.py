@@ -23,6 +23,7 @@ from tasks.config import Config
 from tasks.engine.checkpoint import Checkpoint
 from tasks.engine.profiles import soft_cdf, thresholds
 from tasks.evaluate.evaluation import Evaluation
+from tasks.evaluate.probe_plan import PLANS_DIR
 from tasks.ingest.logs import IngestResult, rejected_by_reason
 from tasks.monitor.alert_advice import with_advice
 from tasks.monitor.alert_delivery import Channels, deliver_night
@@ -30,6 +31,7 @@ from tasks.monitor.alert_history import AlertHistory
 from tasks.monitor.alert_rules import Alert, evaluate_alerts, fold_alerts
 from tasks.monitor.metrics_store import as_stored, read_metrics, row_of, write_night_metrics
 from tasks.monitor.night_metrics import compute_night_metrics, with_versions
+from tasks.monitor.probe_budget_view import night_budget, with_probe_budget
 from tasks.monitor.report import summary_markdown, write_report
 from tasks.schemas import PROBE
 from tasks.train.training import TrainedNight
@@ -149,4 +151,7 @@ def measure_night(cfg: Config, ws: Workspace, run_date: str, window: pd.DataFram
         run_date, window, cfg.scale, cfg.evaluate.skew_margin, probe_errors=cand.probe_errors,
         reference_shares=[r["reference_share"] for r in cand.rounds], evaluation=evaluation,
         volumes=volumes, versions={"candidate": version_id, "live": base_id}, **sample)
+    shadow = trained.shadow.checkpoint if trained.shadow else None
+    row = with_probe_budget(row, night_budget(window, run_date, cand.checkpoint, base, shadow, cfg,
+                                              ws.root / PLANS_DIR))
     return judge_row(ws, cfg, row)

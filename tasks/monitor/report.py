@@ -38,6 +38,7 @@ from tasks.monitor.alert_history import FINAL, night_alerts, read_history
 from tasks.monitor.alert_rules import KIND_SKEW, WITHDRAWN, metric_band
 from tasks.monitor.metrics_store import read_metrics, row_of
 from tasks.monitor.night_metrics import jsonable
+from tasks.monitor.probe_budget_view import CAUTIONS, chart_probe_budget
 from tasks.monitor.report_charts import (
     both_widths,
     chart_anchor_trend,
@@ -198,6 +199,7 @@ def build_report(run_date: str, cfg: Config, row: Mapping, series: pd.DataFrame,
             "prediction_shift": both_widths(chart_prediction_shift, detail, unit),
             "mae_trend": both_widths(chart_mae_trend, trend, unit),
             "anchor_trend": both_widths(chart_anchor_trend, trend, unit, cfg.gate.anchor_budget),
+            "probe_budget": both_widths(chart_probe_budget, detail, unit),
         },
         "settings": {"baseline_nights": cfg.drift.baseline_nights, "mad_k": cfg.drift.mad_k,
                      "min_baseline_nights": cfg.drift.min_baseline_nights,
@@ -241,6 +243,7 @@ def render_html(report: Mapping) -> str:
         show_reference=any(_num(x) is not None for x in d.get("reference_shares") or []),
         # Attributes, not a dict: a label named like a dict method ("items") must stay the label.
         L=SimpleNamespace(**report["settings"]["labels"]),
+        budget=d.get("probe_budget") or {}, probe_cautions=CAUTIONS,
     )
 
 

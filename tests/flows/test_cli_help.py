@@ -13,7 +13,7 @@ from typer.testing import CliRunner
 from flows.cli import app
 
 COMMANDS = ["run", "score", "versions", "report", "demo", "backfill", "status", "rollback", "approve", "reject",
-            "prune", "share", "restore", "serve"]
+            "prune", "share", "restore", "serve", "probe-budget", "probe-plan"]
 
 
 def _help(*args: str) -> str:

@@ -47,6 +47,8 @@ def scene(tmp_path_factory):
     (root / "bad_cron.toml").write_text('[runtime]\nschedule = "30 2 * *"\n')
     (root / "skip.toml").write_text('[input]\nmissing_partition = "skip"\n')
     (root / "full.toml").write_text("[runtime]\nmin_free_mb = 1000000000000\n")   # an exabyte
+    (root / "optout.parquet").write_text("not parquet\n")
+    (root / "optout.csv").write_text("name,email\nA,a@example.org\n")
     return root
 
 
@@ -85,6 +87,21 @@ CASES = [
      ["cannot approve v20261105-1", "is not a published version", "awaiting approval: none"], []),
     ("reject a version that is not there", ["reject", "v20261105-1", "--reason", "x"],
      ["cannot reject v20261105-1", "awaiting approval: none"], []),
+    ("probe-budget date in the wrong form", ["probe-budget", "--date", "2026/11/05"],
+     ["--date", "not of the form YYYY-MM-DD"], []),
+    ("probe-budget of a night without a version", ["probe-budget", "--date", "2026-11-02"],
+     ["no version published for 2026-11-02"], []),
+    ("probe-plan with a budget of 0", ["probe-plan", "--budget", "0", "--date", "2026-11-13"], ["--budget"], []),
+    ("probe-plan opt-out list missing", ["probe-plan", "--budget", "5", "--date", "2026-11-13", "--opt-out",
+                                         "{root}/nope.csv"], ["--opt-out", "no file", "nope.csv"], []),
+    ("probe-plan opt-out list unreadable", ["probe-plan", "--budget", "5", "--date", "2026-11-13", "--opt-out",
+                                            "{root}/optout.parquet"], ["--opt-out", "cannot be read as Parquet"], []),
+    ("probe-plan opt-out list without ids", ["probe-plan", "--budget", "5", "--date", "2026-11-13", "--opt-out",
+                                             "{root}/optout.csv"], ["--opt-out", "no member_id column"], []),
+    ("probe-plan --out in a missing folder", ["probe-plan", "--budget", "5", "--date", "2026-11-13", "--out",
+                                              "{root}/no/such/plan.parquet"], ["--out", "does not exist"], []),
+    ("probe-plan with no live version", ["probe-plan", "--budget", "5", "--date", "2026-11-13"],
+     ["no live version", "run a night first"], []),
 ]
 
 # Commands that only read, pointed at nothing: they say what they tried and create nothing.
@@ -93,6 +110,8 @@ READ_ONLY = [
     ("versions at a missing path", ["versions", "--workspace", "{root}/nowhere"], "nowhere"),
     ("report without a workspace", ["report"], ".tarewise"),
     ("score without a workspace", ["score", "--pairs", "p.parquet", "--out", "o.parquet"], ".tarewise"),
+    ("probe-budget without a workspace", ["probe-budget"], ".tarewise"),
+    ("probe-plan without a workspace", ["probe-plan", "--budget", "5", "--date", "2026-11-13"], ".tarewise"),
 ]
 
 

@@ -23,14 +23,16 @@ import pandas as pd
 import pytest
 
 from handmade import model_errors
-from tasks.config import LabelsConfig
+from tasks.config import GateConfig, LabelsConfig
 from tasks.evaluate.anchor import AnchorComparison
 from tasks.evaluate.evaluation import Evaluation
+from tasks.evaluate.probe_budget import probe_budget
 from tasks.monitor.alert_delivery import Channels
 from tasks.monitor.alert_history import AlertHistory, append_history, night_alerts, read_history
 from tasks.monitor.metrics_store import MetricsStoreError, read_metrics, row_of, write_night_metrics
 from tasks.monitor.night_metrics import compute_night_metrics
 from tasks.monitor.night_report import alert_night
+from tasks.monitor.probe_budget_view import CAUTIONS, with_probe_budget
 from tasks.monitor.report import render_report, summary_markdown, summary_table
 from tasks.monitor.report_charts import FONT_PT
 
@@ -80,6 +82,11 @@ def stored_nights(ws, cfg):
                      "quarantined_by_reason": {EVIL_REASON: 1, "rating_out_of_range": 1},
                      "new_users": 2, "new_items": 7},
             versions={"candidate": EVIL_VERSION, "live": "v-2024-06-01"})
+        if date == DATES[-1]:   # the last night carries a probe budget (measured before the gate)
+            err = np.abs(rng.normal(0, 0.9, 400))
+            budget = probe_budget(err, np.abs(err + rng.normal(0, 0.3, 400)), 120, rng.poisson(2, 30), 41, 3.0,
+                                  GateConfig(), seed=0)
+            row = with_probe_budget(row, budget.to_dict())
         write_night_metrics(ws, row)
         series = read_metrics(ws)
         alert_night(cfg, row_of(series, date, ws.metrics), series, AlertHistory.read(ws), "nightly", Channels(), env={})
@@ -106,8 +113,8 @@ def test_report_escapes_ids_and_carries_the_numbers(stored_nights, cfg):
     row = row_of(read_metrics(stored_nights), DATES[-1], stored_nights.metrics)
     assert f"{row['skew_mean_shift']:+.3f}" in html
     assert "skew_shift" in html and "probe_coverage_low" in html
-    # histograms, skew trend, predictions, MAE, MAE against the anchor
-    assert html.count('src="data:image/svg+xml;base64,') == 5
+    # histograms, skew trend, predictions, MAE, MAE against the anchor, probe budget
+    assert html.count('src="data:image/svg+xml;base64,') == 6
 
 
 def test_report_shows_the_candidate_against_the_anchor_in_one_line_and_a_chart(stored_nights, cfg):
@@ -151,6 +158,7 @@ def test_json_twin_and_determinism(stored_nights, cfg):
 def test_quiet_first_night_renders(stored_nights, cfg):
     html = render_report(stored_nights, DATES[0], cfg)[0].read_text(encoding="utf-8")
     assert "quiet night: no alerts" in html
+    assert 'id="probe-budget"' not in html   # no budget stored for that night: no section
     assert "Not enough nights yet." not in html  # the single night is still drawn
 
 
@@ -287,7 +295,7 @@ def test_report_fits_the_screen_without_sideways_scroll_or_broken_numbers(stored
     assert got["scrollWidth"] <= width, got["stickingOut"][:10]
     assert got["stickingOut"] == []
     assert got["wrapped"] == []
-    assert len(got["charts"]) == 4
+    assert len(got["charts"]) == 6   # the anchor trend and the probe budget curve among them
     for chart in got["charts"]:
         assert chart["narrow"] is (width < 600), chart          # the phone gets the phone-sized drawing
         assert chart["textPx"] >= MIN_CHART_TEXT_PX, chart
@@ -302,3 +310,17 @@ def test_the_demos_words_fit_a_phone_too(stored_nights, cfg, tmp_path):
     html_path, _ = render_report(stored_nights, DATES[-1], cfg.model_copy(update={"labels": words}))
     got = _measure(html_path, 390, tmp_path)
     assert (got["scrollWidth"], got["stickingOut"], got["wrapped"]) == (390, [], [])
+
+
+def test_probe_budget_section_says_what_to_do_and_its_cautions(stored_nights, cfg):
+    """The curve's section: the product owner's sentence, the table with today's count and the modelled
+    counts marked, and the cautions."""
+    html = render_report(stored_nights, DATES[-1], cfg)[0].read_text(encoding="utf-8")
+    section = html[html.index('<section id="probe-budget">'):html.index('<section id="volumes">')]
+    assert "probes a night the gate detects a 0.02 regression 80% of the time" in section
+    assert ">today<" in section and ">modelled<" in section
+    assert 'alt="Line chart: probe ratings a night' in section
+    for caution in CAUTIONS:
+        assert caution.replace("'", "&#39;") in section
+    twin = json.loads((stored_nights.reports / f"{DATES[-1]}.json").read_text())
+    assert twin["detail"]["probe_budget"]["today"] == 120
