@@ -273,8 +273,7 @@ def run_seed(dataset: str, seed: int, preset: Preset, chains: list[str], methods
 
 
 def add_gap(df: pd.DataFrame) -> pd.DataFrame:
-    ref = df[df["what"].isin(["plain", "oracle"])].pivot_table(index=["seed", "night"], columns="what",
-                                                                 values="mae")
+    ref = df[df["what"].isin(["plain", "oracle"])].groupby(["seed", "night", "what"])["mae"].mean().unstack("what")
     p = ref["plain"].reindex(list(zip(df["seed"], df["night"]))).to_numpy()
     o = ref["oracle"].reindex(list(zip(df["seed"], df["night"]))).to_numpy()
     df["gap_closed"] = (p - df["mae"].to_numpy()) / (p - o)
