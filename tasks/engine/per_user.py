@@ -84,7 +84,10 @@ def _own_update(n_users: int, u: np.ndarray, resid: np.ndarray, prior: float) ->
     counts = np.bincount(u, minlength=n_users)
     if not np.isfinite(m):
         return np.zeros(n_users), m, facts
-    return sums / (counts + m), m, facts
+    # m = 0 (no within-user noise measured, e.g. one probe rating each): a user's shift is their own mean
+    # residual, and a user without probe ratings gets none (0, not 0/0).
+    denom = counts + m
+    return np.divide(sums, denom, out=np.zeros(n_users), where=denom > 0), m, facts
 
 
 def fit_correction(ckpt, organic: pd.DataFrame, probe_fit: pd.DataFrame, debias: DebiasSettings,

@@ -20,6 +20,8 @@ Method = Literal["plain", "probe_upweight", "ips", "snips", "recalibrate", "cali
 Companion = Literal["none", "probe_upweight", "ips", "snips", "recalibrate"]
 #: Designs of the per-user correction (``debias.per_user_design``; tasks/engine/per_user.py).
 PerUserDesign = Literal["offset", "skew_offset", "skew_affine"]
+#: What early stopping reads (``model.stop_on``): the raw factoriser's probe-fit MAE or the served score's.
+StopOn = Literal["raw", "corrected"]
 
 
 @dataclass(frozen=True)
@@ -45,6 +47,8 @@ class ModelSettings:
     init_scale: float = 0.05
     seed: int = 7
     threads: int = 1
+    stop_on: StopOn = "corrected"
+    keep_base: bool = True
 
 
 @dataclass(frozen=True)

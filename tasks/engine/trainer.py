@@ -43,7 +43,7 @@ from tasks.engine.profiles import ProfileSampler, empirical_cdf, soft_cdf
 from tasks.engine.recalibration import MonotoneMap
 from tasks.engine.reference import cap_reference_users, draw_reference_users, probe_errors, reference_probabilities
 from tasks.engine.row_adam import RowAdam
-from tasks.engine.settings import Settings
+from tasks.engine.settings import DebiasSettings, Scale, Settings
 from tasks.engine.splits import heldout_mask
 
 
@@ -131,6 +131,27 @@ class EarlyStopping:
         return self.best_epoch
 
 
+def apply_correction(ckpt: Checkpoint, organic: pd.DataFrame, probe_fit: pd.DataFrame, pf_u: np.ndarray,
+                     pf_i: np.ndarray, pf_r: np.ndarray, debias: DebiasSettings, scale: Scale,
+                     notes: list[str]) -> None:
+    """Fit ``ckpt``'s post-hoc correction (recalibration map or per-user correction) on the fitting probe
+    ``pf_*`` / ``probe_fit`` and set it on ``ckpt``; a method without one leaves ``ckpt`` as it is."""
+    method, companion = debias.method, debias.companion
+    if "recalibrate" in (method, companion) and len(pf_r) >= 2:
+        ckpt.score_map = MonotoneMap.fit(ckpt.raw_scores(pf_u, pf_i), pf_r)
+    if method == "per_user":
+        correction = per_user.fit_correction(ckpt, organic, probe_fit, debias, scale)
+        ckpt.score_map, ckpt.user_offset, ckpt.user_scale = (correction.score_map, correction.user_offset,
+                                                             correction.user_scale)
+        ckpt.info["per_user"] = correction.info
+        notes.extend(correction.notes)
+
+
+def has_correction(debias: DebiasSettings) -> bool:
+    """Does the method fit a post-hoc correction after training (so the served score is not the raw MF's)?"""
+    return debias.method == "per_user" or "recalibrate" in (debias.method, debias.companion)
+
+
 def finish_checkpoint(model: Factoriser, users: IdMap, items: IdMap, settings: Settings,
                       previous: Checkpoint | None, best_epoch: int, epochs_run: int, organic: pd.DataFrame,
                       probe_fit: pd.DataFrame, pf_u: np.ndarray, pf_i: np.ndarray, pf_r: np.ndarray,
@@ -146,14 +167,7 @@ def finish_checkpoint(model: Factoriser, users: IdMap, items: IdMap, settings: S
                             "epochs_run": epochs_run, "warm_start": previous is not None})
     # Post-hoc corrections are refitted from scratch every night on the current model (never carried
     # over from ``previous``): they describe this model's errors, not the last one's.
-    if "recalibrate" in (method, companion) and len(pf_r) >= 2:
-        ckpt.score_map = MonotoneMap.fit(ckpt.raw_scores(pf_u, pf_i), pf_r)
-    if method == "per_user":
-        correction = per_user.fit_correction(ckpt, organic, probe_fit, debias, scale)
-        ckpt.score_map, ckpt.user_offset, ckpt.user_scale = (correction.score_map, correction.user_offset,
-                                                             correction.user_scale)
-        ckpt.info["per_user"] = correction.info
-        notes.extend(correction.notes)
+    apply_correction(ckpt, organic, probe_fit, pf_u, pf_i, pf_r, debias, scale, notes)
     errs = probe_errors(pf_u, ckpt.score_idx(pf_u, pf_i), pf_r, debias.shrinkage)
     errs.index = users.ids[errs.index.to_numpy()]
     errs.index.name = "user_id"
@@ -251,8 +265,26 @@ class Training:
         # RowAdam: torch.optim.SparseAdam's update (to float rounding), ~40% cheaper per step (tasks/engine/row_adam.py).
         self.optimiser = RowAdam(list(self.model.parameters()), lr=model_cfg.learning_rate)
         self.stopping = EarlyStopping(self.model, model_cfg.patience)
+        self.stop_corrected = model_cfg.stop_on == "corrected" and has_correction(debias)
         self.rounds: list[dict] = []
         self.reference_draws: list[int] = []        # reference users this worker drew, per round
+
+    def _validation(self) -> float:
+        """Probe-fit MAE of the current weights, NaN without probe ratings. ``model.stop_on = "corrected"``
+        and a method with a post-hoc correction: the MAE of the served score (correction refitted on the
+        fitting split for these weights; every worker holds that split and the whole window, so each
+        computes the same number); else the raw factoriser's, summed over workers."""
+        if self.stop_corrected:
+            if len(self.all_pf_r) == 0:
+                return float("nan")
+            scale = self.settings.scale
+            ckpt = Checkpoint(model=self.model, users=self.users, items=self.items, scale_min=scale.min,
+                              scale_max=scale.max, method=self.settings.debias.method)
+            apply_correction(ckpt, self.organic, self.probe_fit, self.all_pf_u, self.all_pf_i, self.all_pf_r,
+                             self.settings.debias, scale, [])
+            return float(np.abs(ckpt.score_idx(self.all_pf_u, self.all_pf_i) - self.all_pf_r).mean())
+        err, count = self.exchange.sum(float(np.abs(self._predict_fit() - self.pf_r).sum()), float(len(self.pf_r)))
+        return err / count if count else float("nan")
 
     def _predict_fit(self) -> np.ndarray:
         """Predictions on this worker's fitting probe ratings, clipped to the scale; float64 ``[P]``."""
@@ -341,8 +373,7 @@ class Training:
         if not all(bool(torch.isfinite(p).all()) for p in self.model.parameters()):
             raise FloatingPointError(f"training diverged at round {epoch} (non-finite weights); "
                                      "lower model.learning_rate or debias.calibration_weight")
-        err, count = ex.sum(float(np.abs(self._predict_fit() - self.pf_r).sum()), float(len(self.pf_r)))
-        val = err / count if count else float("nan")
+        val = self._validation()
         self.rounds.append({"epoch": epoch, "reference_users": facts["reference_users"],
                             "reference_share": facts["reference_share"], "adjusted_users": facts["adjusted_users"],
                             "calibration": facts["calibration"], "loss": se_sum / self.n_steps,
@@ -368,7 +399,14 @@ class Training:
                          new_items=self.new_items, notes=self.notes)
 
     def run(self) -> FitResult:
-        """Every round until early stopping or the epoch bound, then :meth:`finish`."""
+        """Every round until early stopping or the epoch bound, then :meth:`finish`. A warm start with
+        ``model.keep_base`` first scores the base as round 0: when no round beats it, its weights are kept
+        (new rows as initialised; the post-hoc correction is refitted either way)."""
+        if self.previous is not None and self.settings.model.keep_base:
+            self.base_val = self._validation()
+            self.say(f"round 0 (base): val_mae={self.base_val:.4f}")
+            if np.isfinite(self.base_val):
+                self.stopping.update(0, self.base_val)
         for epoch in range(1, self.epochs + 1):
             if self.run_round(epoch):
                 break

@@ -100,3 +100,16 @@ def test_few_probe_ratings_fall_back_to_the_offset_design(world, cfg) -> None:
     none = fit(organic, probe.iloc[:0], cfg)
     assert any("no probe ratings" in n for n in none.notes)
     assert np.all(none.checkpoint.user_offset == 0)
+
+
+def test_a_single_probe_rating_gives_finite_scores_for_every_user(world, cfg) -> None:
+    # One probe rating in all: no noise variance can be measured (sigma^2 = 0), so the estimated m is 0.
+    # Users without probe ratings must keep a finite offset (this once divided 0 by 0 and a first night
+    # with one probe rating published NaN scores).
+    organic, probe, _ = world
+    for n in (1, 2):
+        res = fit(organic, probe.iloc[:n], cfg)
+        assert np.isfinite(res.checkpoint.user_offset).all()
+        users = organic["user_id"].unique()
+        scores, _ = res.checkpoint.score(users, np.full(len(users), organic["item_id"].iloc[0]))
+        assert np.isfinite(scores).all()

@@ -117,3 +117,44 @@ def test_trainer_applies_the_cap_and_says_so():
     res = fit(logs.organic, logs.probe, cfg)
     assert all(r["reference_users"] == 5 for r in res.rounds)
     assert any("capped at 5" in n for n in res.notes)
+
+
+def test_corrected_stopping_reads_the_served_score_and_raw_reads_the_factoriser() -> None:
+    logs = mnar_logs(n_users=100, n_items=40, per_user=10, probe_users=80, seed=21)
+    base = Settings().updated({"debias.method": "per_user", "debias.per_user_min_probes": 10, "model.max_epochs": 6,
+                               "model.patience": 2, "model.batch_size": 128, "model.dim": 4})
+    pf_mae = {}
+    for stop_on in ("corrected", "raw"):
+        res = fit(logs.organic, logs.probe, base.updated({"model.stop_on": stop_on}))
+        y = res.probe_fit["rating"].to_numpy()
+        served = mae(res.checkpoint.score(res.probe_fit["user_id"], res.probe_fit["item_id"])[0], y)
+        u, i = res.checkpoint.users.lookup(res.probe_fit["user_id"]), res.checkpoint.items.lookup(res.probe_fit["item_id"])
+        raw = mae(np.clip(res.checkpoint.raw_scores(u, i), 1, 5), y)
+        best = res.rounds[res.best_epoch - 1]["val_mae"]
+        # The best round's recorded error is the error of what this fit serves, or of its raw factoriser.
+        assert best == pytest.approx(served if stop_on == "corrected" else raw, abs=1e-6), stop_on
+        pf_mae[stop_on] = served
+        assert served != pytest.approx(raw, abs=1e-4)        # the correction does move the scores
+    # Plain has no correction: both settings read the same number, so the fits are identical.
+    plain = base.updated({"debias.method": "plain"})
+    a, b = (fit(logs.organic, logs.probe, plain.updated({"model.stop_on": s})) for s in ("corrected", "raw"))
+    assert [r["val_mae"] for r in a.rounds] == [r["val_mae"] for r in b.rounds]
+
+
+def test_a_warm_start_keeps_its_base_when_every_round_is_worse() -> None:
+    logs = mnar_logs(n_users=100, n_items=40, per_user=10, probe_users=80, seed=22)
+    cfg = Settings().updated({"debias.method": "plain", "model.max_epochs": 30, "model.patience": 3,
+                              "model.batch_size": 128, "model.dim": 4})
+    first = fit(logs.organic, logs.probe, cfg)
+    # A destructive step size: every fine-tune round lands far from the base's optimum.
+    wild = cfg.updated({"model.learning_rate": 1.0, "model.finetune_epochs": 4})
+    kept = fit(logs.organic, logs.probe, wild, previous=first.checkpoint)
+    assert kept.best_epoch == 0 and kept.checkpoint.info["best_epoch"] == 0
+    assert all(r["val_mae"] > first.rounds[first.best_epoch - 1]["val_mae"] for r in kept.rounds)
+    for k, v in first.checkpoint.model.state_dict().items():
+        assert torch.equal(v, kept.checkpoint.model.state_dict()[k]), k   # same ids, so same shapes
+    forced = fit(logs.organic, logs.probe, wild.updated({"model.keep_base": False}), previous=first.checkpoint)
+    assert forced.best_epoch >= 1                                   # the old rule: at least one round past the base
+    assert mae(*[forced.checkpoint.score(forced.probe_fit["user_id"], forced.probe_fit["item_id"])[0],
+                 forced.probe_fit["rating"].to_numpy()]) > mae(
+        kept.checkpoint.score(kept.probe_fit["user_id"], kept.probe_fit["item_id"])[0], kept.probe_fit["rating"].to_numpy())
