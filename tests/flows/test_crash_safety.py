@@ -9,6 +9,7 @@ import shutil
 import signal
 import subprocess
 import sys
+from pathlib import Path
 
 import pandas as pd
 import pytest
@@ -16,6 +17,20 @@ import pytest
 from tasks.publish import versions
 from tasks.publish.scoring_io import score_pairs
 from tasks.workspace import Workspace
+
+
+def _lenient_demo_config(folder) -> Path:
+    """configs/demo.toml with a gate that promotes every candidate: a kill at ``live:before-switch`` needs a
+    night that switches live, and what is under test (the previous live version survives) does not depend on
+    whether the demo's second night would pass the real gate (with the default model it is held: its
+    held-out MAE is 0.06 worse than live's on 29 ratings)."""
+    from conftest import REPO
+
+    text = (REPO / "configs" / "demo.toml").read_text(encoding="utf-8")
+    assert "\n[gate]\n" in text
+    path = folder / "demo-lenient-gate.toml"
+    path.write_text(text.replace("\n[gate]\n", "\n[gate]\ntolerance_mae = 1.0\nanchor_budget = 1.0\n"), encoding="utf-8")
+    return path
 
 
 def _cli(args, env_extra, api_url):
@@ -33,23 +48,28 @@ def one_night_workspace(prefect_harness, tmp_path_factory):
     from tasks.config import load_config
     from conftest import REPO
 
-    root = tmp_path_factory.mktemp("crash-base") / "ws"
-    cfg = load_config(REPO / "configs" / "demo.toml", logs=str(REPO / "sample_parquet"), workspace=str(root))
+    base = tmp_path_factory.mktemp("crash-base")
+    root = base / "ws"
+    config = _lenient_demo_config(base)
+    cfg = load_config(config, logs=str(REPO / "sample_parquet"), workspace=str(root))
     nightly(cfg=cfg, run_date="2026-11-01")
-    return root
+    return root, config
 
 
 @pytest.mark.parametrize("point", ["publish:staged", "publish:renamed", "live:before-switch"])
-def test_sigkill_during_publish_keeps_live_and_next_run_succeeds(prefect_harness, one_night_workspace, demo_cfg,
-                                                                  tmp_path, point):
+def test_sigkill_during_publish_keeps_live_and_next_run_succeeds(prefect_harness, one_night_workspace, tmp_path,
+                                                                  point):
     from flows.nightly import nightly
+    from tasks.config import load_config
     from conftest import REPO
 
-    shutil.copytree(one_night_workspace, demo_cfg.paths.workspace, dirs_exist_ok=True)
+    base, config = one_night_workspace
+    demo_cfg = load_config(config, logs=str(REPO / "sample_parquet"), workspace=str(tmp_path / "ws"))
+    shutil.copytree(base, demo_cfg.paths.workspace, dirs_exist_ok=True)
     ws = Workspace.at(demo_cfg.paths.workspace)
     live = versions.live_version(ws)
     assert live is not None
-    common = ["--config", str(REPO / "configs" / "demo.toml"), "--logs", str(REPO / "sample_parquet"),
+    common = ["--config", str(config), "--logs", str(REPO / "sample_parquet"),
               "--workspace", str(ws.root)]
     killed = _cli(["run", "--date", "2026-11-02", *common], {"TAREWISE_FAILPOINT": point}, prefect_harness)
     assert killed.returncode == -signal.SIGKILL, (killed.returncode, killed.stderr[-2000:])
