@@ -1,4 +1,4 @@
-"""The configuration: one TOML file validated once at the edge (tasks/config.py). Unknown keys and bad
+"""The configuration: one TOML file validated once at the edge (tasks/config/). Unknown keys and bad
 values stop with the key's name; configs/example.toml is generated from the schema and must match it."""
 
 from __future__ import annotations
@@ -8,7 +8,8 @@ from pathlib import Path
 
 import pytest
 
-from tasks.config import Config, ConfigError, parse_config, render_example
+from tasks.config import Config, ConfigError, parse_config
+from tasks.config.example import render_example
 
 REPO = Path(__file__).resolve().parents[1]
 

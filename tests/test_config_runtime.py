@@ -1,4 +1,4 @@
-"""The config schema checks the time zone and the cron schedule (tasks/config.py) so a typo is caught
+"""The config schema checks the time zone and the cron schedule (tasks/config/operations.py) so a typo is caught
 when the config is read, not at run time. References: the IANA tz database through Python's
 ``zoneinfo`` (with the ``tzdata`` package), and ``prefect.schedules.Cron``, which must accept every
 schedule the schema accepts."""

@@ -80,6 +80,20 @@ def dates_held(dates: list[str], what: str) -> str:
     return f"{what} there: {shown} ({len(dates)})"
 
 
+def stored_night(date: str | None, stored: list[str], what: str, missing: str, none: str) -> str:
+    """The night a read-only command looks at: ``date`` if it is a calendar date among ``stored`` (sorted
+    dates; ``what`` names them in the listing), else the newest. A user error otherwise: ``missing``
+    (with ``{date}``) when the date is not stored, ``none`` when nothing is."""
+    known = dates_held(stored, what)
+    if date is not None:
+        check_date(date, "--date", "night", known)
+        if date not in stored:
+            user_error(f"{missing.format(date=date)}; {known}")
+    elif not stored:
+        user_error(none)
+    return date or stored[-1]
+
+
 def writable_workspace(cfg) -> None:
     """Commands that write: the workspace is a folder (or can be made), writable, with enough free space."""
     from tasks.workspace import WorkspaceError, check_writable

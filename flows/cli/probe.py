@@ -15,7 +15,7 @@ import typer
 from rich.table import Table
 
 from flows.cli.common import ConfigOpt, WorkspaceOpt, console, fail, load
-from flows.cli.preflight import check_date, dates_held, existing_workspace, user_error
+from flows.cli.preflight import check_date, existing_workspace, stored_night, user_error
 
 
 def _num(x: float, digits: int = 3) -> str:
@@ -31,14 +31,8 @@ def probe_budget(date: Optional[str] = typer.Option(None, "--date", "-d", help="
     ws = existing_workspace(cfg, config, workspace)
     from tasks.operate.probe_programme import ProbeInputError, night_budget, nights_with_versions
     nights = nights_with_versions(ws)
-    known = dates_held(nights, "nights with a version")
-    if date is not None:
-        check_date(date, "--date", "night", known)
-        if date not in nights:
-            user_error(f"--date: no version published for {date} in {ws.versions}; {known}")
-    elif not nights:
-        user_error(f"no published version in {ws.versions}; run a night first")
-    date = date or nights[-1]
+    date = stored_night(date, nights, "nights with a version", f"--date: no version published for {{date}} in {ws.versions}",
+                        f"no published version in {ws.versions}; run a night first")
     try:
         budget, vid = night_budget(ws, cfg, date)
     except ProbeInputError as exc:

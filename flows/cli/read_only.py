@@ -13,7 +13,7 @@ from typing import Optional
 import typer
 
 from flows.cli.common import ConfigOpt, SharedOpt, WorkspaceOpt, console, err, fail, load
-from flows.cli.preflight import check_date, dates_held, existing_workspace, user_error
+from flows.cli.preflight import existing_workspace, stored_night, user_error
 from flows.cli.tables import alerts_table, runs_table, versions_table
 
 
@@ -58,14 +58,8 @@ def report(date: Optional[str] = typer.Option(None, "--date", "-d", help="Night 
     ws = existing_workspace(cfg, config, workspace)
     from tasks.monitor.metrics_store import read_metrics
     stored = sorted({str(d) for d in read_metrics(ws)["run_date"]})
-    known = dates_held(stored, "nights with stored metrics")
-    if date is not None:
-        check_date(date, "--date", "night", known)
-        if date not in stored:
-            user_error(f"no metrics stored for {date} in {ws.metrics}; {known}")
-    elif not stored:
-        user_error(f"no stored metrics in {ws.metrics}; run a night first")
-    date = date or stored[-1]
+    date = stored_night(date, stored, "nights with stored metrics", f"no metrics stored for {{date}} in {ws.metrics}",
+                        f"no stored metrics in {ws.metrics}; run a night first")
     from tasks.monitor.report import render_report
     try:
         html, js = render_report(ws, date, cfg)

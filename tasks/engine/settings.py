@@ -1,6 +1,6 @@
 """The engine's own settings: exactly what training reads, as small frozen dataclasses (no pydantic).
 
-The pipeline validates its TOML config (``tasks/config.py``) and converts the three sections the engine
+The pipeline validates its TOML config (``tasks/config/``) and converts the three sections the engine
 reads at its edge (``tasks/train/settings.py: engine_settings``); the engine itself imports nothing of
 the pipeline. Field names, types and defaults are those of the config keys of the same name
 (``scale.*``, ``model.*``, ``debias.*``), where each is documented with its range;
