@@ -23,7 +23,7 @@ class ModelConfig(_Section):
     seed: int = Field(7, ge=0, description="Seed of every random draw (init, shuffles, reference sampling).")
     threads: int = Field(1, ge=1, le=256, description="torch intra-op threads; part of the reproducibility contract.")
     stop_on: Literal["raw", "corrected"] = Field(
-        "corrected", description="What early stopping reads on the probe fitting split: 'corrected' = the MAE of "
+        "raw", description="What early stopping reads on the probe fitting split: 'corrected' = the MAE of "
         "the served score (the method's post-hoc correction refitted for each round's weights; methods without "
         "one read the raw model); 'raw' = the factoriser's own MAE, before any correction.")
     refit_every: int = Field(0, ge=0, le=10_000, description="Train from scratch (cold) instead of warm-starting "
@@ -32,7 +32,7 @@ class ModelConfig(_Section):
     cold_candidate: bool = Field(False, description="On a warm-started night also train a cold model on the same "
                                  "window and keep whichever has the lower probe-fit MAE of the served score (the "
                                  "fitting split, never the gate's held-out one); costs a cold fit every night.")
-    keep_base: bool = Field(True, description="A warm start scores its base as round 0 for early stopping, "
+    keep_base: bool = Field(False, description="A warm start scores its base as round 0 for early stopping, "
                             "so a night whose rounds are all worse keeps the base's weights (new rows as "
                             "initialised) instead of taking at least one round.")
 

@@ -47,8 +47,8 @@ class ModelSettings:
     init_scale: float = 0.05
     seed: int = 7
     threads: int = 1
-    stop_on: StopOn = "corrected"
-    keep_base: bool = True
+    stop_on: StopOn = "raw"
+    keep_base: bool = False
 
 
 @dataclass(frozen=True)

@@ -147,7 +147,7 @@ def test_a_warm_start_keeps_its_base_when_every_round_is_worse() -> None:
                               "model.batch_size": 128, "model.dim": 4})
     first = fit(logs.organic, logs.probe, cfg)
     # A destructive step size: every fine-tune round lands far from the base's optimum.
-    wild = cfg.updated({"model.learning_rate": 1.0, "model.finetune_epochs": 4})
+    wild = cfg.updated({"model.learning_rate": 1.0, "model.finetune_epochs": 4, "model.keep_base": True})
     kept = fit(logs.organic, logs.probe, wild, previous=first.checkpoint)
     assert kept.best_epoch == 0 and kept.checkpoint.info["best_epoch"] == 0
     assert all(r["val_mae"] > first.rounds[first.best_epoch - 1]["val_mae"] for r in kept.rounds)

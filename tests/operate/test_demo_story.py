@@ -95,7 +95,8 @@ def test_run_prints_the_version_folder_and_the_report(demo_run, tmp_path) -> Non
     root, ws, _ = demo_run
     copy = tmp_path / "ws"
     shutil.copytree(ws.root, copy)
-    result = _cli("run", "--date", "2026-11-12", "-c", str(REPO / "configs" / "demo.toml"), "--logs",
+    # the night is done with the same inputs, so only --force re-runs it (a plain trigger says "unchanged")
+    result = _cli("run", "--date", "2026-11-12", "--force", "-c", str(REPO / "configs" / "demo.toml"), "--logs",
                   str(REPO / "sample_parquet"), "--workspace", str(copy))
     assert result.exit_code == 0, result.output[-2000:]
     assert f"version: {copy / 'versions' / 'v20261112-2'}" in result.output
