@@ -172,6 +172,12 @@ def backfill(start: str = typer.Option(..., "--start", help="First date YYYY-MM-
     if not to_run:
         console.print(f"nothing to do: all {len(plan)} date(s) in {start}..{end} are done (--force re-runs them)")
         return
+    ran, stop = reach(plan)
+    if stop is not None:
+        # Known before any night starts: refuse in one line instead of running up to the gap and failing there.
+        user_error(f"backfill: no dt={stop.run_date} partition in {cfg.paths.logs}, so the backfill would stop at "
+                   f"{stop.run_date} after {ran} night(s). Run up to the day before it (--end), or set "
+                   f"input.missing_partition = \"skip\" if days without logs are normal here (--dry-run shows the plan)")
     from tasks.lock import LockHeld, check_free
     try:
         check_free(ws.lock, cfg.runtime.lock_stale_seconds)

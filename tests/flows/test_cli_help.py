@@ -56,3 +56,11 @@ def test_dry_run_says_where_a_missing_day_stops_the_backfill_and_creates_nothing
     assert "5 to run, 0 to skip" in text
     assert "it stops at 2026-11-03 (no partition): 2 night(s) run before it, 2 after it are not reached" in text
     assert not (tmp_path / "ws").exists()
+
+    # Without --dry-run the same plan is refused in one line before any night runs (nothing half done).
+    result = CliRunner().invoke(app, ["backfill", "--start", "2026-11-01", "--end", "2026-11-05",
+                                      "--logs", str(tmp_path / "logs"), "--workspace", str(tmp_path / "ws")])
+    assert result.exit_code == 2, result.output
+    lines = [ln for ln in result.output.splitlines() if ln.strip()]
+    assert len(lines) == 1 and "no dt=2026-11-03 partition" in lines[0] and "after 2 night(s)" in lines[0], lines
+    assert not (tmp_path / "ws" / "versions").exists() or not any((tmp_path / "ws" / "versions").iterdir())
