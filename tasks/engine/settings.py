@@ -39,7 +39,7 @@ class ModelSettings:
 
     dim: int = 16
     learning_rate: float = 0.02
-    weight_decay: float = 0.02
+    weight_decay: float = 0.2
     batch_size: int = 1024
     max_epochs: int = 40
     finetune_epochs: int = 8
