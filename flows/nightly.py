@@ -17,7 +17,7 @@ from tasks.dates import parse_date, yesterday
 from tasks.engine.checkpoint import Checkpoint
 from tasks.evaluate.gate import decide
 from tasks.evaluate.probe_plan import PLANS_DIR, uniform_heldout
-from tasks.evaluate.segments import user_skew_segments
+from tasks.evaluate.segments import judged_segments
 from tasks.ingest.logs import IngestResult
 from tasks.ingest.partition import inputs_key
 from tasks.monitor.night_report import measure_night, monitor_night
@@ -128,7 +128,8 @@ def _work(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool,
             trained = steps.train(cfg, window, base, base_shadow)
         cand, shadow = trained.candidate, trained.shadow.checkpoint if trained.shadow else None
         with night.stage("evaluate"):
-            segments = user_skew_segments(window, cfg.evaluate.skew_margin)
+            # segments from the window without the held-out probe rows they are judged on (segments.py)
+            segments = judged_segments(window, cand.probe_heldout, cfg.evaluate.skew_margin)
             # probe ratings of members a probe plan picked are not judged on (tasks/evaluate/probe_plan.py)
             heldout, _ = uniform_heldout(cand.probe_heldout, window, ws.root / PLANS_DIR)
             night.evaluation = steps.evaluate(cfg, heldout, segments, cand.checkpoint, shadow, base)

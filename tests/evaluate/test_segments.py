@@ -8,6 +8,7 @@ from __future__ import annotations
 import math
 
 import numpy as np
+import pandas as pd
 import pytest
 
 from handmade import member_window
@@ -46,3 +47,26 @@ def test_ratings_by_user_counts_and_means():
 def test_missing_column_is_named():
     with pytest.raises(ValueError, match=r"lacks column\(s\) \['source'\]"):
         user_skew(member_window().drop(columns="source"))
+
+
+def test_judged_segments_leave_out_the_held_out_probe_ratings_they_are_judged_on() -> None:
+    from tasks.evaluate.segments import judged_segments
+
+    # u1 rates 3 organically; one fitting probe (3) and one held-out probe (5). With the held-out rating
+    # u1 would be 'down' (organic 3 below probe mean 4 by more than 0.5): a segment chosen by the very
+    # rating it is then judged on. Without it u1 is 'neutral'. u2's only probe rating is held out: unknown.
+    window = pd.DataFrame({
+        "user_id": ["u1", "u1", "u1", "u2", "u2"],
+        "item_id": ["a", "b", "c", "a", "d"],
+        "rating": [3.0, 3.0, 5.0, 4.0, 1.0],
+        "source": ["organic", "probe", "probe", "organic", "probe"],
+        "dt": ["2026-11-01"] * 5,
+    })
+    heldout = pd.DataFrame({"user_id": ["u1", "u2"], "item_id": ["c", "d"], "rating": [5.0, 1.0]})
+    assert user_skew_segments(window, 0.5).to_dict() == {"u1": "down", "u2": "up"}
+    assert judged_segments(window, heldout, 0.5).to_dict() == {"u1": "neutral", "u2": "unknown"}
+    # categorical ids (as the window read hands them over) give the same answer
+    cat = window.astype({"user_id": "category", "item_id": "category"})
+    assert judged_segments(cat, heldout, 0.5).astype(str).to_dict() == {"u1": "neutral", "u2": "unknown"}
+    # nothing held out: the same as user_skew_segments
+    assert judged_segments(window, heldout.iloc[:0], 0.5).equals(user_skew_segments(window, 0.5))
