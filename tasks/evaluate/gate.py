@@ -11,7 +11,9 @@ Rules, in order (the first that fails holds the candidate, with its reason):
    five steps of 0.008 each pass rule 2 one by one, but not this rule once they add up past the budget.
    No anchor (first night, ``gate.anchor_nights = 0``, every recent version gone): not judged;
 4. no selection-skew segment's MAE rises above the baseline's by more than ``gate.max_segment_regression``
-   (segments with fewer than ``gate.min_heldout`` ratings on either side are not judged);
+   beyond the candidate's noise (the baseline's MAE lies below the candidate's bootstrap interval for the
+   segment; segments with fewer than ``gate.min_heldout`` ratings on either side are not judged; segments
+   are computed without the held-out ratings they are judged on, ``segments.judged_segments``);
 5. no segment is worse than doing nothing: when the baseline is live, each segment is also compared
    with the plain shadow model under the same tolerance and row minimum, every night (without a shadow
    model tonight, ``runtime.shadow = false``, not judged). ``gate.segments_vs_shadow = "note"`` promotes
@@ -166,13 +168,22 @@ def anchor_note(anchor: AnchorComparison | None) -> str:
 
 def judge_segments(cand: ModelErrors, other: ModelErrors, name: str, cfg: GateConfig) -> str | None:
     """The first segment (label order) whose MAE is worse than ``other``'s by more than
-    ``gate.max_segment_regression``, as a reason; None when none is. Segments with fewer than
-    ``gate.min_heldout`` ratings on either side, or missing from ``other``, are not judged."""
+    ``gate.max_segment_regression`` *beyond the candidate's noise*, as a reason; None when none is.
+
+    Beyond noise: ``other``'s MAE lies below the candidate's bootstrap interval for that segment
+    (``evaluate.confidence``); without an interval (``evaluate.bootstrap = 0``) the margin alone decides.
+    A segment holds a handful of held-out ratings: on the demo and the InstEval long run, point
+    comparisons of 10-40 ratings held candidates that were better overall and, by the ground truth, in
+    that segment too (README, "Long run"). Segments with fewer than ``gate.min_heldout`` ratings on either
+    side, or missing from ``other``, are not judged."""
     for label, seg in sorted(cand.segments.items()):
         oseg = other.segments.get(label)
         if oseg is None or min(seg.n, oseg.n) < cfg.min_heldout:
             continue
-        if seg.mae > oseg.mae + cfg.max_segment_regression:
-            return (f"segment '{label}' MAE {seg.mae:.4f} worse than {name} {oseg.mae:.4f} by more than "
-                    f"gate.max_segment_regression={cfg.max_segment_regression}")
+        within_noise = math.isfinite(seg.mae_lo) and seg.mae_lo <= oseg.mae
+        if seg.mae > oseg.mae + cfg.max_segment_regression and not within_noise:
+            interval = (f" (below the candidate's interval {seg.mae_lo:.4f}-{seg.mae_hi:.4f} on {seg.n} ratings)"
+                        if math.isfinite(seg.mae_lo) else "")
+            return (f"segment '{label}' MAE {seg.mae:.4f} worse than {name} {oseg.mae:.4f}{interval} by more "
+                    f"than gate.max_segment_regression={cfg.max_segment_regression}")
     return None

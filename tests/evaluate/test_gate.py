@@ -6,10 +6,11 @@ Invented held-out errors (stars) of the library-app demo; every number is invent
 from __future__ import annotations
 
 import math
+from dataclasses import replace
 
 import pytest
 
-from handmade import model_errors
+from handmade import errors, model_errors
 from tasks.config import GateConfig
 from tasks.evaluate.anchor import AnchorComparison
 from tasks.evaluate.evaluation import Evaluation
@@ -236,12 +237,14 @@ def test_a_segment_worse_than_the_plain_shadow_holds_even_when_live_is_as_bad():
     shadow = model_errors(0.90, segments={"down": (0.80, 30), "up": (1.00, 30)})
     d = decide(Evaluation(cand, shadow=shadow, live=live), GATE)
     assert (d.promote, d.compared_to) == (False, "live")
-    assert d.reason == ("segment 'down' MAE 0.9500 worse than the plain shadow model 0.8000 by more than "
+    assert d.reason == ("segment 'down' MAE 0.9500 worse than the plain shadow model 0.8000 (below the candidate's "
+                        "interval 0.9000-1.0000 on 30 ratings) by more than "
                         "gate.max_segment_regression=0.05: no segment may be worse than doing nothing "
                         "(gate.segments_vs_shadow = \"hold\")")
     noted = decide(Evaluation(cand, shadow=shadow, live=live), GateConfig(min_heldout=10, segments_vs_shadow="note"))
     assert noted.promote and noted.reason.endswith(
-        "segment 'down' MAE 0.9500 worse than the plain shadow model 0.8000 by more than "
+        "segment 'down' MAE 0.9500 worse than the plain shadow model 0.8000 (below the candidate's interval "
+        "0.9000-1.0000 on 30 ratings) by more than "
         "gate.max_segment_regression=0.05, which does not hold it (gate.segments_vs_shadow = \"note\")")
 
 
@@ -252,3 +255,17 @@ def test_segments_against_the_shadow_follow_the_segment_tolerance_and_row_minimu
     few = model_errors(0.9, segments={"down": (0.50, 9)})       # 9 < gate.min_heldout: not judged
     assert decide(Evaluation(within, shadow=few, live=live), GATE).promote
     assert decide(Evaluation(within, shadow=None, live=live), GATE).promote   # no shadow tonight
+
+
+def test_a_segment_regression_inside_the_candidates_own_interval_does_not_hold() -> None:
+    # 'down' is 0.08 worse than live and than the shadow, more than the 0.05 margin, but both lie inside
+    # the candidate's interval on its 12 ratings (0.70-1.20): within noise, not judged a regression.
+    noisy = model_errors(0.80, segments={"down": (0.95, 12)})
+    noisy = replace(noisy, segments={"down": errors(0.95, 12, width=0.25)})
+    live = model_errors(0.81, segments={"down": (0.87, 12)})
+    shadow = model_errors(0.90, segments={"down": (0.87, 12)})
+    assert decide(Evaluation(noisy, shadow=shadow, live=live), GATE).promote
+    # the same point estimates with a tight interval (0.90-1.00) are beyond noise: held, the interval named
+    tight = model_errors(0.80, segments={"down": (0.95, 12)}, width=0.05)
+    d = decide(Evaluation(tight, shadow=shadow, live=live), GATE)
+    assert not d.promote and "below the candidate's interval 0.9000-1.0000 on 12 ratings" in d.reason
