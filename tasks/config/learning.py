@@ -25,7 +25,7 @@ class ModelConfig(_Section):
     seed: int = Field(7, ge=0, description="Seed of every random draw (init, shuffles, reference sampling).")
     threads: int = Field(1, ge=1, le=256, description="torch intra-op threads; part of the reproducibility contract.")
     stop_on: Literal["raw", "corrected"] = Field(
-        "raw", description="What early stopping reads on the probe fitting split: 'corrected' = the MAE of "
+        "corrected", description="What early stopping reads on the probe fitting split: 'corrected' = the MAE of "
         "the served score (the method's post-hoc correction refitted for each round's weights; methods without "
         "one read the raw model); 'raw' = the factoriser's own MAE, before any correction.")
     refit_every: int = Field(0, ge=0, le=10_000, description="Train from scratch (cold) instead of warm-starting "

@@ -47,7 +47,7 @@ class ModelSettings:
     init_scale: float = 0.05
     seed: int = 7
     threads: int = 1
-    stop_on: StopOn = "raw"
+    stop_on: StopOn = "corrected"
     keep_base: bool = False
 
 
