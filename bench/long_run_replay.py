@@ -8,7 +8,10 @@ compares warm-start rules over 60 nights and 3 seeds on a busy machine. Variants
 * ``warm``: warm start every night under the given settings (the default: ``model.stop_on = "corrected"``,
   ``model.keep_base = true``);
 * ``refit=N``: a cold fit every N nights (``model.refit_every``);
-* ``better``: a warm and a cold fit every night, keep the lower probe-fit MAE (``model.cold_candidate``).
+* ``better``: a warm and a cold fit every night, keep the lower probe-fit MAE (``model.cold_candidate``);
+* ``methods``: no chain; at each checkpoint night a cold fit of the default, of plain, of the oracle and
+  of every method of ``bench/long_run.py``'s ``METHODS`` on the same window, MAE overall and per
+  selection group (one JSON line each): the every-method table of README's "Long run".
 
     python bench/long_run_replay.py insteval 0 warm '{}'                       # + cold/plain/oracle
     python bench/long_run_replay.py insteval 0 warm '{"model.stop_on": "raw", "model.keep_base": false}'
@@ -53,6 +56,25 @@ def main(argv: list[str]) -> int:
         pred, _ = ck.score(s.test_user, s.test_item)
         return mae(pred, s.test_rating)
 
+    if variant == "methods":
+        from bench.long_run import METHODS
+        from bench.open_data import GROUPS
+
+        def groups(ck) -> dict:
+            pred, _ = ck.score(s.test_user, s.test_item)
+            err = abs(pred - s.test_rating)
+            return {"mae": float(err.mean()), **{f"mae_{g}": float(err[s.test_group == g].mean()) for g in GROUPS}}
+
+        for d in p.at:
+            org, pr = s.organic[w.organic_day <= d], s.probe[w.probe_day <= d]
+            runs = {"default": (org, base), "plain": (org, plain), "oracle": (s.oracle.iloc[:len(org)], plain),
+                    **{k: (org, base.updated(v)) for k, v in METHODS.items()}}
+            for what, (ratings, settings) in runs.items():
+                t = time.perf_counter()
+                res = fit(ratings, pr, settings)
+                print(json.dumps({"ds": ds, "seed": seed, "night": d, "what": what, **groups(res.checkpoint),
+                                  "secs": time.perf_counter() - t}), flush=True)
+        return 0
     refit = int(variant.split("=")[1]) if variant.startswith("refit=") else 0
     prev = None
     for d in range(1, p.days + 1):
