@@ -4,17 +4,20 @@ night's live" passes every night; the anchor comparison shows in the report and 
 How the decline is injected (an honest route, no mocks): invented demo logs (tasks/operate/demo_data,
 a fictional library network's reading app) in which, from the third night on, a growing share of each
 night's organic ratings is mirrored (a rating r written as 6 - r, as a client bug that inverts the star
-widget would), 15% more every night. Probe ratings are left alone: they are the judge. With a 3-day
+widget would), 10% more every night. Probe ratings are left alone: they are the judge. With a 3-day
 window the model trained each night sees more inverted ratings than the night before, so its held-out
 probe MAE creeps up a little every night.
 
-Measured on this data (seeded, deterministic; candidate minus live on tonight's held-out probe ratings,
-about 180-300 of them): -0.008, -0.012, +0.004, +0.019 on nights 2-5: every step is well inside a 0.03
-tolerance, which is above this data's night-to-night noise (about 0.01-0.02 at these sizes). Against
-the anchor (the strongest recent version on the same rows) the steps add up: +0.008, -0.006, +0.005,
-then +0.022 on night 5. The budget is 0.015 here: on night 5 the candidate is held by the anchor alone.
-With the old rule alone (``gate.anchor_nights = 0``) the same nine nights all go live (the ``long``
-test below; measured: every step within +0.019 of live).
+Measured on this data with the default model (seeded, deterministic; candidate minus live on tonight's
+held-out probe ratings, about 150-300 of them): -0.003, -0.011, +0.001, +0.015 on nights 2-5: every step
+is well inside a 0.03 tolerance, which is above this data's night-to-night noise (about 0.01-0.02 at
+these sizes). Against the anchor (the strongest recent version on the same rows) the steps add up:
++0.015, -0.005, +0.003, then +0.019 on night 5. The budget is 0.015 here: on night 5 the candidate is
+held by the anchor alone. (The injection grew 15% a night until the default model changed to
+``model.weight_decay = 0.2``: that model follows the inverted ratings more closely, so a 15% step moved
+night 5 by 0.036 and the one-step rule caught it by itself; 10% keeps the decline slow.)
+With the old rule alone (``gate.anchor_nights = 0``) the same nights all go live (the ``long`` test
+below).
 """
 
 from __future__ import annotations
@@ -35,7 +38,7 @@ from tasks.workspace import Workspace
 
 START = dt.date(2026, 11, 1)
 CLEAN_NIGHTS = 2        # nights 1-2 untouched
-STEP = 0.15             # share of a night's organic ratings mirrored grows by this much each night after
+STEP = 0.10             # share of a night's organic ratings mirrored grows by this much each night after
 TOLERANCE, BUDGET = 0.03, 0.015
 
 TOML = """
@@ -69,7 +72,7 @@ def _dates(n: int) -> list[str]:
 
 
 def declining_logs(folder: Path, nights: int) -> None:
-    """Invented logs whose organic ratings are mirrored in a share growing 0, 0, 15%, 30%, ..."""
+    """Invented logs whose organic ratings are mirrored in a share growing 0, 0, 10%, 20%, ..."""
     from tasks.operate.demo_data import generate
 
     generate(folder, start_date=START.isoformat(), days=nights, n_members=1000, n_titles=300,

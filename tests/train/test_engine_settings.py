@@ -18,7 +18,7 @@ CHANGED = {
     "scale.min": 0.0, "scale.max": 10.0, "scale.step": 0.5,
     "model.dim": 5, "model.learning_rate": 0.03, "model.weight_decay": 0.1, "model.batch_size": 99,
     "model.max_epochs": 7, "model.finetune_epochs": 3, "model.patience": 2, "model.init_scale": 0.2,
-    "model.seed": 11, "model.threads": 2, "model.stop_on": "corrected", "model.keep_base": True,
+    "model.seed": 11, "model.threads": 2, "model.stop_on": "raw", "model.keep_base": True,
     "debias.method": "calibrated", "debias.calibration_weight": 2.5, "debias.profile_points": 12,
     "debias.profile_sharpness": 0.3, "debias.reference_temperature": 0.7, "debias.reference_p_min": 0.05,
     "debias.reference_p_max": 0.8, "debias.shrinkage": 2.0, "debias.profile_item_sample": 64,
