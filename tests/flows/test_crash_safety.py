@@ -9,28 +9,14 @@ import shutil
 import signal
 import subprocess
 import sys
-from pathlib import Path
 
 import pandas as pd
 import pytest
 
+from handmade import promote_all_demo_config
 from tasks.publish import versions
 from tasks.publish.scoring_io import score_pairs
 from tasks.workspace import Workspace
-
-
-def _lenient_demo_config(folder) -> Path:
-    """configs/demo.toml with a gate that promotes every candidate: a kill at ``live:before-switch`` needs a
-    night that switches live, and what is under test (the previous live version survives) does not depend on
-    whether the demo's second night would pass the real gate (with the default model it is held: on 29
-    held-out ratings it is 0.06 worse than live, and its 'up' segment by more than the segment limit)."""
-    from conftest import REPO
-
-    text = (REPO / "configs" / "demo.toml").read_text(encoding="utf-8")
-    assert "\n[gate]\n" in text
-    path = folder / "demo-lenient-gate.toml"
-    path.write_text(text.replace("\n[gate]\n", "\n[gate]\ntolerance_mae = 1.0\nanchor_budget = 1.0\nmax_segment_regression = 2.0\n"), encoding="utf-8")
-    return path
 
 
 def _cli(args, env_extra, api_url):
@@ -50,7 +36,7 @@ def one_night_workspace(prefect_harness, tmp_path_factory):
 
     base = tmp_path_factory.mktemp("crash-base")
     root = base / "ws"
-    config = _lenient_demo_config(base)
+    config = promote_all_demo_config(base)
     cfg = load_config(config, logs=str(REPO / "sample_parquet"), workspace=str(root))
     nightly(cfg=cfg, run_date="2026-11-01")
     return root, config

@@ -18,6 +18,7 @@ import pyarrow.fs as pafs
 import pyarrow.parquet as pq
 import pytest
 
+from handmade import PROMOTE_ALL, promote_all_demo_config
 from tasks.config import ConfigError, load_config
 from tasks.operate import shared_copy as sc
 from tasks.operate import shared_restore as sr
@@ -32,12 +33,7 @@ NIGHTS = ["2026-11-01", "2026-11-02", "2026-11-03"]
 def _cfg(tmp_path: Path, ws: str, shared: str | None, **settings):
     cfg = load_config(REPO / "configs" / "demo.toml", logs=str(REPO / "sample_parquet"),
                       workspace=str(tmp_path / ws), shared=shared if shared is not None else "")
-    return cfg.updated(settings) if settings else cfg
-
-
-#: Retention and the copy, not the gate, are under test where this is used: every night goes live, so
-#: the night-1 version is the one retention prunes whatever the gate would say of the demo's small probe.
-PROMOTE_ALL = {"gate.tolerance_mae": 1.0, "gate.anchor_budget": 1.0, "gate.max_segment_regression": 2.0}
+    return cfg.updated({**PROMOTE_ALL, **settings})
 
 
 def _night(cfg, day):
@@ -138,7 +134,7 @@ def test_a_fresh_workspace_restores_and_its_next_night_equals_the_original(first
 
 def test_retention_removes_pruned_versions_from_the_shared_copy_never_the_live_one(first_night, tmp_path):
     uri = _copy_base(first_night, tmp_path)
-    cfg = _cfg(tmp_path, "ws-a", uri, **{"retention.keep_versions": 1, **PROMOTE_ALL})
+    cfg = _cfg(tmp_path, "ws-a", uri, **{"retention.keep_versions": 1})
     for day in NIGHTS[1:]:
         assert _night(cfg, day)["status"] == "done"
     ws = Workspace.at(tmp_path / "ws-a")
@@ -164,7 +160,7 @@ def test_a_night_killed_before_the_pointer_leaves_the_old_live_version_whole(pre
     before = versions.live_version(ws)
     env = dict(os.environ, PREFECT_API_URL=prefect_harness, TAREWISE_FAILPOINT="shared:before-pointer")
     killed = subprocess.run([sys.executable, "-m", "flows.cli", "run", "--date", NIGHTS[1], "--config",
-                             str(REPO / "configs" / "demo.toml"), "--logs", str(REPO / "sample_parquet"),
+                             str(promote_all_demo_config(tmp_path)), "--logs", str(REPO / "sample_parquet"),
                              "--workspace", str(ws.root), "--shared", uri],
                             cwd=REPO, env=env, capture_output=True, text=True, timeout=600)
     assert killed.returncode == -signal.SIGKILL, killed.stderr[-2000:]
@@ -301,7 +297,7 @@ def test_nights_over_the_s3_protocol(prefect_harness, first_night, tmp_path, s3_
     uri = f"s3://reading-app-models/tarewise?endpoint_override={s3_endpoint}&scheme=http&region=us-east-1"
     shutil.copytree(first_night / "ws-a", tmp_path / "ws-a")
     (tmp_path / "ws-a" / sc.JOURNAL).unlink()          # this workspace has not copied anything to S3 yet
-    cfg = _cfg(tmp_path, "ws-a", uri, **{"retention.keep_versions": 1, **PROMOTE_ALL})
+    cfg = _cfg(tmp_path, "ws-a", uri, **{"retention.keep_versions": 1})
     for day in NIGHTS[1:]:
         out = _night(cfg, day)
         assert out["status"] == "done" and out["shared"]["files"] > 0
