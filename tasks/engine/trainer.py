@@ -33,13 +33,13 @@ import pandas as pd
 import torch
 
 from tasks.engine import per_user
-from tasks.engine.calibration import calibration_term_per_user
+from tasks.engine.calibration import References, profile_term_per_user
 from tasks.engine.checkpoint import Checkpoint
 from tasks.engine.exchange import Exchange
 from tasks.engine.idmap import IdMap
 from tasks.engine.inputs import EngineInputError, check_frame, prepare_model, training_examples
 from tasks.engine.model import Factoriser
-from tasks.engine.profiles import ProfileSampler, empirical_cdf, soft_cdf
+from tasks.engine.profiles import ProfileSampler, empirical_cdf
 from tasks.engine.recalibration import MonotoneMap
 from tasks.engine.reference import cap_reference_users, draw_reference_users, probe_errors, reference_probabilities
 from tasks.engine.row_adam import RowAdam
@@ -67,12 +67,12 @@ class FitResult:
 @dataclass
 class StepCalibration:
     """What a step needs for the distribution-calibration term: thresholds ``t`` [K], sharpness, the
-    round's reference profiles [R, K] (or None), the optional extra target [K] and its weight, the term's
-    weight (lambda) and the round's scale ``n_steps / visits``."""
+    round's reference profiles [R, K] prepared for every step (or None), the optional extra target [K] and its
+    weight, the term's weight (lambda) and the round's scale ``n_steps / visits``."""
 
     t: torch.Tensor
     sharpness: float
-    references: torch.Tensor | None
+    references: References | None
     extra_target: torch.Tensor | None
     extra_weight: float
     weight: float
@@ -96,8 +96,8 @@ def step_loss(model: Factoriser, u: torch.Tensor, i: torch.Tensor, r: torch.Tens
     loss = se + weight_decay * penalty.sum() / norm
     term = None
     if block is not None:
-        term = calibration_term_per_user(soft_cdf(block, calib.t, calib.sharpness), calib.references,
-                                         calib.extra_target, calib.extra_weight).sum()
+        term = profile_term_per_user(block, calib.t, calib.sharpness, calib.references, calib.extra_target,
+                                     calib.extra_weight).sum()
         loss = loss + calib.weight * term * calib.scale
         term = term.detach()
     return loss, se.detach(), term
@@ -345,7 +345,8 @@ class Training:
             reps = -(-visits // len(adjusted)) if len(adjusted) else 0
             orders = [adjusted[torch.randperm(len(adjusted), generator=gen)] for _ in range(reps)]
             visit_order = torch.cat(orders)[:visits] if reps else torch.empty(0, dtype=torch.int64)
-            calib = StepCalibration(self.profiles.t, self.profiles.sharpness, references if len(references) else None,
+            calib = StepCalibration(self.profiles.t, self.profiles.sharpness,
+                                    References(references) if len(references) else None,
                                     self.probe_target, debias.probe_target_weight, debias.calibration_weight,
                                     self.n_steps / facts["all_visits"])
         # One gather per column per round, then contiguous slices: gathering each mini-batch from the
