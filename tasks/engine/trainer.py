@@ -197,7 +197,18 @@ class Training:
     (:meth:`run` does all three). ``exchange``: the single-process :class:`Exchange` unless given one for
     data-parallel training, where ``organic``/``probe`` are still the *whole* window and each worker
     keeps its users' ratings. ``batch_per_worker``: each worker takes ``model.batch_size`` ratings per
-    step (see :func:`tasks.engine.distributed.fit_distributed`)."""
+    step (see :func:`tasks.engine.distributed.fit_distributed`).
+
+    ``term_schedule`` (set on an instance before the first round; not a config key yet): how a round's
+    visits of adjusted users are spread over its steps. ``"spread"`` (what nights run): every step takes
+    its even share (~40 users per step at 1M ratings). ``"packed"``: up to ``debias.users_per_step`` users
+    on each of ``ceil(visits / users_per_step)`` steps spaced evenly through the round, none on the others.
+    Every user is still visited once per round with the same weight and a profile over the same number of
+    sampled items, so the round's objective is the same; what changes is the path (a step's item sample is
+    shared by more users, fewer steps carry the term), measured in BENCHMARKS.md ("calibrated epoch
+    against the trainer's own plain epoch")."""
+
+    term_schedule: str = "spread"
 
     def __init__(self, organic: pd.DataFrame, probe: pd.DataFrame | None, settings: Settings,
                  previous: Checkpoint | None = None, exchange: Exchange | None = None,
@@ -357,8 +368,17 @@ class Training:
         # Self-normalised IPS divides each step's squared error by the step's weight sum over all workers.
         weight_sums = ex.sum(*(float(S_w[b].sum()) for b in steps)) if self.self_normalise else None
         se_sum, term_sum = 0.0, 0.0
+        # Term step j of m takes visits [j * visits // m, (j + 1) * visits // m) and lands on step
+        # j * n_steps // m; with m = n_steps that is every step's even share.
+        m = self.n_steps
+        if calib and self.term_schedule == "packed":
+            m = min(self.n_steps, max(1, -(-visits // -(-debias.users_per_step // ex.world))))
+        elif self.term_schedule not in ("spread", "packed"):
+            raise ValueError(f"term_schedule must be 'spread' or 'packed', got {self.term_schedule!r}")
+        term_steps = {j * self.n_steps // m: (j * visits // m, (j + 1) * visits // m) for j in range(m)} if calib else {}
         for k, b in enumerate(steps):
-            pick = visit_order[k * visits // self.n_steps:(k + 1) * visits // self.n_steps] if calib else None
+            span = term_steps.get(k)
+            pick = visit_order[span[0]:span[1]] if span else None
             loss, se, term = step_loss(self.model, S_u[b], S_i[b], S_r[b], S_w[b], float(self.step_count[k]),
                                        self.settings.model.weight_decay, pick,
                                        self.profiles.step_items(gen) if pick is not None and len(pick) else None,
