@@ -57,25 +57,30 @@ class References:
 
 
 def _soft_nearest_forward(f: torch.Tensor, refs: References):
-    """``(term [A], (f64 [A, K], d [A, R], w [A, R], on_floor [A, R]))`` of
+    """``(term [A], (f64 [A, K], d [A, R], w [A, R], on_floor [A, R] or None))`` of
     ``term_u = sum_v softmax_v(1 / d_uv) d_uv`` for profiles f ``[A, K]``; the rest is what
     :func:`_soft_nearest_backward` reads besides ``term``."""
     f64 = f.double()
     sq = _squared_distance64(f64, refs.g64, refs.sq)
-    on_floor = sq < DIST_FLOOR * DIST_FLOOR
-    d = torch.sqrt(torch.clamp_(sq, min=DIST_FLOOR * DIST_FLOOR)).to(f.dtype)       # [A, R]
+    # A profile on top of a reference is rare: one min() decides, and the [A, R] mask (and the backward's
+    # pass to apply it) exists only when some distance is on the floor.
+    on_floor = sq < DIST_FLOOR * DIST_FLOOR if bool(sq.min() < DIST_FLOOR * DIST_FLOOR) else None
+    d = torch.clamp_(sq, min=DIST_FLOOR * DIST_FLOOR).sqrt_().to(f.dtype)            # [A, R]
     w = torch.softmax(d.reciprocal(), dim=1)
     term = (w * d).sum(dim=1)                                                          # [A]
     return term, (f64, d, w, on_floor)
 
 
 def _soft_nearest_backward(grad_term: torch.Tensor, term: torch.Tensor, f64: torch.Tensor, d: torch.Tensor,
-                           w: torch.Tensor, on_floor: torch.Tensor, g64: torch.Tensor) -> torch.Tensor:
+                           w: torch.Tensor, on_floor: torch.Tensor | None, g64: torch.Tensor) -> torch.Tensor:
     """Gradient ``[A, K]`` (in ``grad_term``'s dtype) of the term with respect to the profiles; see
     :class:`_SoftNearestDistance`."""
     # h = dterm/dd / d, scaled by the incoming gradient, in place on one [A, R] buffer.
-    h = (d - term.unsqueeze(1)).div_(d * d).neg_().add_(1.0).mul_(w).div_(d)
-    h.mul_(grad_term.unsqueeze(1)).masked_fill_(on_floor, 0.0)
+    # 1 - x in one pass rounds exactly as -x + 1 did in two.
+    h = (1.0 - (d - term.unsqueeze(1)).div_(d * d)).mul_(w).div_(d)
+    h.mul_(grad_term.unsqueeze(1))
+    if on_floor is not None:
+        h.masked_fill_(on_floor, 0.0)
     h64 = h.double()
     grad = f64 * h64.sum(dim=1, keepdim=True) - h64 @ g64
     return grad.to(grad_term.dtype)
