@@ -8,7 +8,8 @@ peak memory (``ru_maxrss``) belongs to that case alone. Prints a markdown table 
     python bench/bench_engine.py                    # 100k, 1M and 5M ratings
     python bench/bench_engine.py --sizes 100k,1M    # a subset
     python bench/bench_engine.py --epochs 3         # average over more epochs
-    nice -n 10 python bench/bench_engine.py --one-process --sizes 1M,10M --repeats 5
+    nice -n 10 python bench/bench_engine.py --one-process --sizes 1M,10M --repeats 5 --packed
+    nice -n 10 python bench/bench_engine.py --to-convergence 2 --sizes 100k,1M
 
 Goals (from the engine issue): calibrated epoch <= 1.5x plain epoch at 1M ratings; peak memory bounded by
 ``debias.memory_budget_mb`` plus the data, not by users x items. Issue 17: a calibrated epoch <= 1.3x the
@@ -284,6 +285,42 @@ def one_process(size: str, repeats: int, overrides: dict, packed: bool) -> dict:
     return out
 
 
+def to_convergence(size: str, overrides: dict, seed: int) -> dict:
+    """Calibrated training to early stopping under each term schedule (and plain for scale), same data
+    and seed; returns per case the rounds run, the best round, seconds per round and :func:`heldout_facts`
+    of the kept weights. What a schedule must not lose is here, not in a few timed rounds."""
+    import torch
+
+    from tasks.config import Config
+    from tasks.engine.trainer import Training
+    from tasks.train.settings import engine_settings
+
+    torch.set_num_threads(1)
+    organic, probe = synthetic_logs(*SIZES[size], seed=seed)
+    out = {"size": size, "seed": seed, "cases": {}}
+    for name, method, schedule in (("plain", "plain", "spread"), ("calibrated", "calibrated", "spread"),
+                                   ("calibrated packed", "calibrated", "packed")):
+        cfg = Config().updated({"debias.method": method, "model.seed": seed + 7, **overrides})
+        tr = Training(organic, probe, engine_settings(cfg))
+        tr.term_schedule = schedule
+        res = tr.run()
+        out["cases"][name] = {"rounds": len(res.rounds), "best": res.best_epoch,
+                              "sec_per_round": float(np.median([r["seconds"] for r in res.rounds])),
+                              **heldout_facts(tr)}
+        print(f"{size} seed {seed} {name}: {out['cases'][name]}", file=sys.stderr, flush=True)
+    return out
+
+
+def convergence_table(results: list[dict]) -> str:
+    lines = ["| size | seed | case | rounds (best) | s/round (median) | held-out probe MAE | calibration term "
+             "(held-out draw) |", "|---|---:|---|---:|---:|---:|---:|"]
+    for r in results:
+        for name, c in r["cases"].items():
+            lines.append(f"| {r['size']} | {r['seed']} | {name} | {c['rounds']} ({c['best']}) "
+                         f"| {c['sec_per_round']:.2f} | {c['heldout_mae']:.4f} | {c['term']:.4f} |")
+    return "\n".join(lines)
+
+
 def one_process_table(results: list[dict]) -> str:
     lines = ["| size | case | s/round (wall, median) | **ratio to plain (wall)** | CPU s/round | ratio (CPU) "
              "| held-out probe MAE | calibration term (held-out draw) | training term (last 3 rounds) "
@@ -307,6 +344,8 @@ def main() -> None:
     ap.add_argument("--one-process", action="store_true", help="plain and calibrated rounds in turn in one "
                     "process (issue 17's ratio); prints medians and held-out facts")
     ap.add_argument("--repeats", type=int, default=5, help="--one-process: timed rounds per case")
+    ap.add_argument("--to-convergence", type=int, default=0, metavar="SEEDS", help="train plain, calibrated and "
+                    "calibrated packed to early stopping on SEEDS seeds and print held-out facts (no timing ratio)")
     ap.add_argument("--packed", action="store_true", help="--one-process: also a calibrated model with the "
                     "packed term schedule (Training.term_schedule)")
     ap.add_argument("--case", help=argparse.SUPPRESS)   # internal: run one case, print JSON
@@ -321,6 +360,14 @@ def main() -> None:
     unknown = [s for s in sizes if s not in SIZES]
     if unknown:
         ap.error(f"unknown size(s) {unknown}; choose from {list(SIZES)}")
+    if args.to_convergence:
+        results = [to_convergence(size, overrides, seed) for size in sizes for seed in range(args.to_convergence)]
+        text = ("# Engine benchmark: term schedules to early stopping\n\n" + convergence_table(results) + "\n")
+        print(text)
+        out = Path(args.out).with_name("engine-convergence.md")
+        out.parent.mkdir(parents=True, exist_ok=True)
+        out.write_text(text)
+        return
     if args.one_process:
         results = [one_process(size, args.repeats, overrides, args.packed) for size in sizes]
         text = ("# Engine benchmark, one process\n\nSynthetic selection-skewed logs (invented numbers); plain and "
