@@ -1,7 +1,7 @@
 """Engine benchmark: seconds per epoch of plain vs calibrated training, throughput and peak memory.
 
 Not a timed test. Generates synthetic selection-skewed logs (invented numbers, vectorised generation:
-never a users x items array) at up to three sizes and trains each case in its own subprocess so that
+never a users x items array) at the sizes asked for and trains each case in its own subprocess so that
 peak memory (``ru_maxrss``) belongs to that case alone. Prints a markdown table and writes it to
 ``bench/out/engine.md``.
 
