@@ -1,16 +1,25 @@
 """Engine benchmark: seconds per epoch of plain vs calibrated training, throughput and peak memory.
 
 Not a timed test. Generates synthetic selection-skewed logs (invented numbers, vectorised generation:
-never a users x items array) at up to three sizes and trains each case in its own subprocess so that
+never a users x items array) at the sizes asked for and trains each case in its own subprocess so that
 peak memory (``ru_maxrss``) belongs to that case alone. Prints a markdown table and writes it to
 ``bench/out/engine.md``.
 
     python bench/bench_engine.py                    # 100k, 1M and 5M ratings
     python bench/bench_engine.py --sizes 100k,1M    # a subset
     python bench/bench_engine.py --epochs 3         # average over more epochs
+    nice -n 10 python bench/bench_engine.py --one-process --sizes 1M,10M --repeats 5 --packed
+    nice -n 10 python bench/bench_engine.py --to-convergence 2 --sizes 100k,1M
 
 Goals (from the engine issue): calibrated epoch <= 1.5x plain epoch at 1M ratings; peak memory bounded by
-``debias.memory_budget_mb`` plus the data, not by users x items.
+``debias.memory_budget_mb`` plus the data, not by users x items. Issue 17: a calibrated epoch <= 1.3x the
+trainer's own plain epoch at 1M and 10M, measured in one process: ``--one-process`` trains a plain and a
+calibrated model (and, with ``--packed``, a calibrated one with the packed term schedule) side by side on
+the same frames, one round each in turn (A B A B ..., after one warm-up round each, so load on a shared
+machine falls on both), and prints the median seconds per round and the median of the per-repeat ratios,
+with the load average. It ends with each model's held-out probe MAE and calibration term (see
+``heldout_facts``) after the same number of rounds, which is what a schedule that changes the term's path
+has to keep.
 """
 
 from __future__ import annotations
@@ -39,6 +48,7 @@ SIZES = {
     "100k": (100_000, 10_000, 5_000),
     "1M": (1_000_000, 40_000, 20_000),
     "5M": (5_000_000, 100_000, 50_000),
+    "10M": (10_000_000, 200_000, 50_000),
 }
 METHODS = ("plain", "calibrated")
 
@@ -199,6 +209,131 @@ def table(rows: list[dict]) -> str:
     return "\n".join(lines)
 
 
+def heldout_facts(training, eval_users: int = 5000, seed: int = 12345) -> dict:
+    """Held-out probe MAE (raw factoriser, clipped to the scale) and the calibration term of ``training``'s
+    current weights: ``eval_users`` adjusted users drawn with a fixed seed, their profiles over
+    ``profile_item_sample`` fixed-seed items each, against a reference draw made with a fixed seed (the
+    method's own draw: probe errors under these weights), mean over users. The same seeds for every model,
+    so two schedules are compared on the same draws wherever their probe errors agree."""
+    import torch
+
+    from tasks.engine.calibration import calibration_term
+
+    scale = training.settings.scale
+    held = training.probe_heldout
+    u, i = training.users.lookup(held["user_id"]), training.items.lookup(held["item_id"])
+    with torch.no_grad():
+        pred = training.model(torch.from_numpy(u), torch.from_numpy(i)).double().clamp(scale.min, scale.max)
+    mae = float(np.abs(pred.numpy() - held["rating"].to_numpy(float)).mean())
+    saved = training.rng, training.gen, list(training.reference_draws)
+    training.rng, training.gen = np.random.default_rng(seed), torch.Generator().manual_seed(seed)
+    try:
+        adjusted, references, _facts = training._references()
+        pick = adjusted[torch.randperm(len(adjusted), generator=training.gen)[:eval_users]]
+        profiles = training.profiles.targets(training.model, pick, training.gen)
+        term = float(calibration_term(profiles, references)) if len(references) else float("nan")
+    finally:
+        training.rng, training.gen, training.reference_draws = saved
+    return {"heldout_mae": mae, "term": term, "heldout_n": len(held)}
+
+
+def one_process(size: str, repeats: int, overrides: dict, packed: bool) -> dict:
+    """Plain and calibrated rounds in turn in this process on the same frames; returns medians, ratios, load."""
+    import torch
+
+    from tasks.config import Config
+    from tasks.engine.trainer import Training
+    from tasks.train.settings import engine_settings
+
+    torch.set_num_threads(1)
+    t0 = time.perf_counter()
+    organic, probe = synthetic_logs(*SIZES[size])
+    print(f"{size}: generated in {time.perf_counter() - t0:.1f} s", file=sys.stderr, flush=True)
+    cases = {"plain": ("plain", "spread"), "calibrated": ("calibrated", "spread")}
+    if packed:
+        cases["calibrated packed"] = ("calibrated", "packed")
+    trainings = {}
+    for name, (method, schedule) in cases.items():
+        cfg = Config().updated({"debias.method": method, "model.max_epochs": repeats + 1,
+                                "model.patience": repeats + 2, **overrides})
+        trainings[name] = Training(organic, probe, engine_settings(cfg))
+        trainings[name].term_schedule = schedule
+    load_start = os.getloadavg()
+    for tr in trainings.values():          # warm-up: first touches of every table, allocator growth
+        tr.run_round(1)
+    wall = {name: [] for name in trainings}
+    cpu = {name: [] for name in trainings}
+    for rep in range(repeats):
+        for name, tr in trainings.items():
+            w0, c0 = time.perf_counter(), time.process_time()
+            tr.run_round(rep + 2)
+            wall[name].append(time.perf_counter() - w0)
+            cpu[name].append(time.process_time() - c0)
+        print(f"{size} repeat {rep + 1}: " + ", ".join(f"{n} {wall[n][-1]:.2f} s" for n in trainings)
+              + f" (load {os.getloadavg()[0]:.1f})", file=sys.stderr, flush=True)
+    load_end = os.getloadavg()
+    out = {"size": size, "ratings": len(organic), "repeats": repeats, "load_start": load_start[0],
+           "load_end": load_end[0], "cases": {}}
+    for name, tr in trainings.items():
+        w, c = np.array(wall[name]), np.array(cpu[name])
+        out["cases"][name] = {
+            "wall": float(np.median(w)), "cpu": float(np.median(c)),
+            "ratio_wall": float(np.median(w / np.array(wall["plain"]))),
+            "ratio_cpu": float(np.median(c / np.array(cpu["plain"]))),
+            "train_term": float(np.mean([r["calibration_term"] for r in tr.rounds[-3:]])),
+            **heldout_facts(tr)}
+    return out
+
+
+def to_convergence(size: str, overrides: dict, seed: int) -> dict:
+    """Calibrated training to early stopping under each term schedule (and plain for scale), same data
+    and seed; returns per case the rounds run, the best round, seconds per round and :func:`heldout_facts`
+    of the kept weights. What a schedule must not lose is here, not in a few timed rounds."""
+    import torch
+
+    from tasks.config import Config
+    from tasks.engine.trainer import Training
+    from tasks.train.settings import engine_settings
+
+    torch.set_num_threads(1)
+    organic, probe = synthetic_logs(*SIZES[size], seed=seed)
+    out = {"size": size, "seed": seed, "cases": {}}
+    for name, method, schedule in (("plain", "plain", "spread"), ("calibrated", "calibrated", "spread"),
+                                   ("calibrated packed", "calibrated", "packed")):
+        cfg = Config().updated({"debias.method": method, "model.seed": seed + 7, **overrides})
+        tr = Training(organic, probe, engine_settings(cfg))
+        tr.term_schedule = schedule
+        res = tr.run()
+        out["cases"][name] = {"rounds": len(res.rounds), "best": res.best_epoch,
+                              "sec_per_round": float(np.median([r["seconds"] for r in res.rounds])),
+                              **heldout_facts(tr)}
+        print(f"{size} seed {seed} {name}: {out['cases'][name]}", file=sys.stderr, flush=True)
+    return out
+
+
+def convergence_table(results: list[dict]) -> str:
+    lines = ["| size | seed | case | rounds (best) | s/round (median) | held-out probe MAE | calibration term "
+             "(held-out draw) |", "|---|---:|---|---:|---:|---:|---:|"]
+    for r in results:
+        for name, c in r["cases"].items():
+            lines.append(f"| {r['size']} | {r['seed']} | {name} | {c['rounds']} ({c['best']}) "
+                         f"| {c['sec_per_round']:.2f} | {c['heldout_mae']:.4f} | {c['term']:.4f} |")
+    return "\n".join(lines)
+
+
+def one_process_table(results: list[dict]) -> str:
+    lines = ["| size | case | s/round (wall, median) | **ratio to plain (wall)** | CPU s/round | ratio (CPU) "
+             "| held-out probe MAE | calibration term (held-out draw) | training term (last 3 rounds) "
+             "| rounds timed | load start / end |",
+             "|---|---|---:|---:|---:|---:|---:|---:|---:|---:|---:|"]
+    for r in results:
+        for name, c in r["cases"].items():
+            lines.append(f"| {r['size']} | {name} | {c['wall']:.2f} | **{c['ratio_wall']:.2f}x** | {c['cpu']:.2f} "
+                         f"| {c['ratio_cpu']:.2f}x | {c['heldout_mae']:.4f} | {c['term']:.4f} "
+                         f"| {c['train_term']:.4f} | {r['repeats']} | {r['load_start']:.1f} / {r['load_end']:.1f} |")
+    return "\n".join(lines)
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--sizes", default="100k,1M,5M", help="comma list of " + ",".join(SIZES))
@@ -206,6 +341,13 @@ def main() -> None:
     ap.add_argument("--overrides", default="{}", help='JSON of dotted config overrides, e.g. '
                     '\'{"debias.users_per_step": 128}\'')
     ap.add_argument("--out", default=str(OUT))
+    ap.add_argument("--one-process", action="store_true", help="plain and calibrated rounds in turn in one "
+                    "process (issue 17's ratio); prints medians and held-out facts")
+    ap.add_argument("--repeats", type=int, default=5, help="--one-process: timed rounds per case")
+    ap.add_argument("--to-convergence", type=int, default=0, metavar="SEEDS", help="train plain, calibrated and "
+                    "calibrated packed to early stopping on SEEDS seeds and print held-out facts (no timing ratio)")
+    ap.add_argument("--packed", action="store_true", help="--one-process: also a calibrated model with the "
+                    "packed term schedule (Training.term_schedule)")
     ap.add_argument("--case", help=argparse.SUPPRESS)   # internal: run one case, print JSON
     ap.add_argument("--data", help=argparse.SUPPRESS)   # internal: folder with the case's Parquet logs
     args = ap.parse_args()
@@ -218,6 +360,27 @@ def main() -> None:
     unknown = [s for s in sizes if s not in SIZES]
     if unknown:
         ap.error(f"unknown size(s) {unknown}; choose from {list(SIZES)}")
+    if args.to_convergence:
+        results = [to_convergence(size, overrides, seed) for size in sizes for seed in range(args.to_convergence)]
+        text = ("# Engine benchmark: term schedules to early stopping\n\n" + convergence_table(results) + "\n")
+        print(text)
+        out = Path(args.out).with_name("engine-convergence.md")
+        out.parent.mkdir(parents=True, exist_ok=True)
+        out.write_text(text)
+        return
+    if args.one_process:
+        results = [one_process(size, args.repeats, overrides, args.packed) for size in sizes]
+        text = ("# Engine benchmark, one process\n\nSynthetic selection-skewed logs (invented numbers); plain and "
+                f"calibrated rounds in turn in one process, 1 torch thread, {args.repeats} timed rounds per case "
+                f"after one warm-up round each, {platform.processor() or platform.machine()}, {os.cpu_count()} cores"
+                f"{'; overrides ' + json.dumps(overrides) if overrides else ''}. Ratio = median over repeats of "
+                "(case round / the plain round next to it).\n\n" + one_process_table(results) + "\n")
+        print(text)
+        print(json.dumps(results), file=sys.stderr)
+        out = Path(args.out).with_name("engine-one-process.md")
+        out.parent.mkdir(parents=True, exist_ok=True)
+        out.write_text(text)
+        return
     rows = []
     for size in sizes:
         with tempfile.TemporaryDirectory(prefix=f"tarewise-bench-{size}-") as tmp:

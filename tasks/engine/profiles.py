@@ -35,6 +35,28 @@ def soft_cdf(pred: torch.Tensor, t: torch.Tensor, sharpness: float) -> torch.Ten
     return _SoftCdf.apply(pred, (t / sharpness).to(pred.dtype), 1.0 / sharpness)
 
 
+def soft_cdf_block(pred: torch.Tensor, t_scaled: torch.Tensor, inv_s: float) -> torch.Tensor:
+    """The soft CDF's sigmoid block ``sigmoid(t_k / s - pred_us / s)``, shape ``[U, K, S]``, from pred
+    ``[U, S]`` (rating units), ``t_scaled = t / s`` ``[K]`` and ``inv_s = 1 / s``. Its mean over the last axis
+    is the profile ``[U, K]``; :func:`soft_cdf_backward` needs the block itself.
+
+    Laid out [U, K, S] so the long item axis is innermost (contiguous, vectorised); with the short K axis
+    innermost the two big kernels ran ~1.5x slower (torch.profiler, 40 x 256 x 10 block).
+    """
+    return torch.sigmoid_(t_scaled.view(1, -1, 1) - (pred * inv_s).unsqueeze(1))
+
+
+def soft_cdf_backward(grad_f: torch.Tensor, sig: torch.Tensor, inv_s: float) -> torch.Tensor:
+    """Gradient ``[U, S]`` with respect to pred of the profile ``sig.mean(2)``, given its gradient ``grad_f``
+    ``[U, K]`` and the block ``sig`` ``[U, K, S]`` of :func:`soft_cdf_block`.
+
+    dF_k/dpred_s = -inv_s / S * sig (1 - sig); the constant is folded into the small [U, K] gradient, so the
+    block is read once by one fused ``sigmoid_backward`` and summed over K.
+    """
+    g = (grad_f * (-inv_s / sig.shape[2])).unsqueeze(2).expand_as(sig)
+    return torch.ops.aten.sigmoid_backward(g, sig).sum(dim=1)
+
+
 class _SoftCdf(torch.autograd.Function):
     """``mean_s sigmoid(t_k / s - pred_us / s)`` with a hand-written backward.
 
@@ -46,9 +68,7 @@ class _SoftCdf(torch.autograd.Function):
 
     @staticmethod
     def forward(ctx, pred: torch.Tensor, t_scaled: torch.Tensor, inv_s: float) -> torch.Tensor:
-        # Laid out [U, K, S] so the long item axis is innermost (contiguous, vectorised); with the short
-        # K axis innermost the two big kernels ran ~1.5x slower (torch.profiler, 40 x 256 x 10 block).
-        sig = torch.sigmoid_(t_scaled.view(1, -1, 1) - (pred * inv_s).unsqueeze(1))    # [U, K, S]
+        sig = soft_cdf_block(pred, t_scaled, inv_s)
         ctx.save_for_backward(sig)
         ctx.inv_s = inv_s
         return sig.mean(dim=2)
@@ -56,9 +76,7 @@ class _SoftCdf(torch.autograd.Function):
     @staticmethod
     def backward(ctx, grad_f: torch.Tensor):
         sig, = ctx.saved_tensors
-        # dF_k/dpred_s = -inv_s / S * sig (1 - sig); the constant is folded into the small [U, K] grad.
-        g = (grad_f * (-ctx.inv_s / sig.shape[2])).unsqueeze(2).expand_as(sig)
-        return torch.ops.aten.sigmoid_backward(g, sig).sum(dim=1), None, None
+        return soft_cdf_backward(grad_f, sig, ctx.inv_s), None, None
 
 
 def soft_cdf_chunked(predict: Callable[[torch.Tensor, torch.Tensor], torch.Tensor], users: torch.Tensor,

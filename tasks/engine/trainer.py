@@ -33,13 +33,13 @@ import pandas as pd
 import torch
 
 from tasks.engine import per_user
-from tasks.engine.calibration import calibration_term_per_user
+from tasks.engine.calibration import References, profile_term_per_user
 from tasks.engine.checkpoint import Checkpoint
 from tasks.engine.exchange import Exchange
 from tasks.engine.idmap import IdMap
 from tasks.engine.inputs import EngineInputError, check_frame, prepare_model, training_examples
 from tasks.engine.model import Factoriser
-from tasks.engine.profiles import ProfileSampler, empirical_cdf, soft_cdf
+from tasks.engine.profiles import ProfileSampler, empirical_cdf
 from tasks.engine.recalibration import MonotoneMap
 from tasks.engine.reference import cap_reference_users, draw_reference_users, probe_errors, reference_probabilities
 from tasks.engine.row_adam import RowAdam
@@ -67,12 +67,12 @@ class FitResult:
 @dataclass
 class StepCalibration:
     """What a step needs for the distribution-calibration term: thresholds ``t`` [K], sharpness, the
-    round's reference profiles [R, K] (or None), the optional extra target [K] and its weight, the term's
-    weight (lambda) and the round's scale ``n_steps / visits``."""
+    round's reference profiles [R, K] prepared for every step (or None), the optional extra target [K] and its
+    weight, the term's weight (lambda) and the round's scale ``n_steps / visits``."""
 
     t: torch.Tensor
     sharpness: float
-    references: torch.Tensor | None
+    references: References | None
     extra_target: torch.Tensor | None
     extra_weight: float
     weight: float
@@ -96,8 +96,8 @@ def step_loss(model: Factoriser, u: torch.Tensor, i: torch.Tensor, r: torch.Tens
     loss = se + weight_decay * penalty.sum() / norm
     term = None
     if block is not None:
-        term = calibration_term_per_user(soft_cdf(block, calib.t, calib.sharpness), calib.references,
-                                         calib.extra_target, calib.extra_weight).sum()
+        term = profile_term_per_user(block, calib.t, calib.sharpness, calib.references, calib.extra_target,
+                                     calib.extra_weight).sum()
         loss = loss + calib.weight * term * calib.scale
         term = term.detach()
     return loss, se.detach(), term
@@ -197,7 +197,18 @@ class Training:
     (:meth:`run` does all three). ``exchange``: the single-process :class:`Exchange` unless given one for
     data-parallel training, where ``organic``/``probe`` are still the *whole* window and each worker
     keeps its users' ratings. ``batch_per_worker``: each worker takes ``model.batch_size`` ratings per
-    step (see :func:`tasks.engine.distributed.fit_distributed`)."""
+    step (see :func:`tasks.engine.distributed.fit_distributed`).
+
+    ``term_schedule`` (set on an instance before the first round; not a config key yet): how a round's
+    visits of adjusted users are spread over its steps. ``"spread"`` (what nights run): every step takes
+    its even share (~40 users per step at 1M ratings). ``"packed"``: up to ``debias.users_per_step`` users
+    on each of ``ceil(visits / users_per_step)`` steps spaced evenly through the round, none on the others.
+    Every user is still visited once per round with the same weight and a profile over the same number of
+    sampled items, so the round's objective is the same; what changes is the path (a step's item sample is
+    shared by more users, fewer steps carry the term), measured in BENCHMARKS.md ("calibrated epoch
+    against the trainer's own plain epoch")."""
+
+    term_schedule: str = "spread"
 
     def __init__(self, organic: pd.DataFrame, probe: pd.DataFrame | None, settings: Settings,
                  previous: Checkpoint | None = None, exchange: Exchange | None = None,
@@ -345,7 +356,8 @@ class Training:
             reps = -(-visits // len(adjusted)) if len(adjusted) else 0
             orders = [adjusted[torch.randperm(len(adjusted), generator=gen)] for _ in range(reps)]
             visit_order = torch.cat(orders)[:visits] if reps else torch.empty(0, dtype=torch.int64)
-            calib = StepCalibration(self.profiles.t, self.profiles.sharpness, references if len(references) else None,
+            calib = StepCalibration(self.profiles.t, self.profiles.sharpness,
+                                    References(references) if len(references) else None,
                                     self.probe_target, debias.probe_target_weight, debias.calibration_weight,
                                     self.n_steps / facts["all_visits"])
         # One gather per column per round, then contiguous slices: gathering each mini-batch from the
@@ -356,8 +368,17 @@ class Training:
         # Self-normalised IPS divides each step's squared error by the step's weight sum over all workers.
         weight_sums = ex.sum(*(float(S_w[b].sum()) for b in steps)) if self.self_normalise else None
         se_sum, term_sum = 0.0, 0.0
+        # Term step j of m takes visits [j * visits // m, (j + 1) * visits // m) and lands on step
+        # j * n_steps // m; with m = n_steps that is every step's even share.
+        m = self.n_steps
+        if calib and self.term_schedule == "packed":
+            m = min(self.n_steps, max(1, -(-visits // -(-debias.users_per_step // ex.world))))
+        elif self.term_schedule not in ("spread", "packed"):
+            raise ValueError(f"term_schedule must be 'spread' or 'packed', got {self.term_schedule!r}")
+        term_steps = {j * self.n_steps // m: (j * visits // m, (j + 1) * visits // m) for j in range(m)} if calib else {}
         for k, b in enumerate(steps):
-            pick = visit_order[k * visits // self.n_steps:(k + 1) * visits // self.n_steps] if calib else None
+            span = term_steps.get(k)
+            pick = visit_order[span[0]:span[1]] if span else None
             loss, se, term = step_loss(self.model, S_u[b], S_i[b], S_r[b], S_w[b], float(self.step_count[k]),
                                        self.settings.model.weight_decay, pick,
                                        self.profiles.step_items(gen) if pick is not None and len(pick) else None,

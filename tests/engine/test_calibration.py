@@ -187,3 +187,63 @@ def test_hand_written_backward_matches_autograd_of_the_formula_in_float32() -> N
     torch.testing.assert_close(fused, b.grad, rtol=1e-4, atol=1e-4)
     torch.testing.assert_close(calibration_term_per_user(a, r).detach(),
                                (torch.softmax(1.0 / d, dim=1) * d).sum(dim=1).detach(), rtol=1e-6, atol=1e-7)
+
+
+# ---- the fused step term: soft CDF + term in one node, references prepared once per round ------------
+
+def _block(users: int, items: int, seed: int) -> torch.Tensor:
+    g = torch.Generator().manual_seed(seed)
+    return (3.0 + 1.2 * torch.randn(users, items, generator=g)).requires_grad_(True)
+
+
+@pytest.mark.parametrize("target_weight", [0.0, 0.7])
+def test_fused_step_term_is_bit_identical_to_soft_cdf_then_term(target_weight: float) -> None:
+    """Training's step term must keep checkpoints as they were: same value and gradient, bit for bit, as the
+    two-node composition it replaced (soft_cdf, then calibration_term_per_user)."""
+    from tasks.engine.calibration import References, profile_term_per_user
+
+    t = thresholds(1.0, 5.0, 10)
+    refs = soft_cdf(3.0 + torch.randn(90, 256, generator=torch.Generator().manual_seed(30)), t, 0.1)
+    target = torch.linspace(0.05, 1.0, 10)
+    a, b = _block(41, 256, seed=31), _block(41, 256, seed=31)
+    old = calibration_term_per_user(soft_cdf(a, t, 0.1), refs, target, target_weight).sum()
+    new = profile_term_per_user(b, t, 0.1, References(refs), target, target_weight).sum()
+    (old * 0.37).backward()
+    (new * 0.37).backward()
+    assert torch.equal(old.detach(), new.detach())
+    assert torch.equal(a.grad, b.grad)
+
+
+def test_fused_step_term_matches_autograd_of_the_plain_formula() -> None:
+    """Against the formula written the obvious way (mean of sigmoids, Euclidean distances, softmax of 1/d)
+    and differentiated by torch autograd, in float64."""
+    from tasks.engine.calibration import References, profile_term_per_user
+
+    t = thresholds(1.0, 5.0, 8, dtype=torch.float64)
+    refs = soft_cdf(3.0 + torch.randn(30, 64, generator=torch.Generator().manual_seed(32), dtype=torch.float64),
+                    t, 0.3)
+    target = torch.linspace(0.1, 1.0, 8, dtype=torch.float64)
+    pred = _block(12, 64, seed=33).detach().double().requires_grad_(True)
+    fused = profile_term_per_user(pred, t, 0.3, References(refs), target, 0.5)
+    g_fused, = torch.autograd.grad(fused.sum(), pred)
+    plain_pred = pred.detach().clone().requires_grad_(True)
+    f = torch.sigmoid((t.view(1, 1, -1) - plain_pred.unsqueeze(-1)) / 0.3).mean(dim=1)          # [U, K]
+    d = torch.sqrt(((f.unsqueeze(1) - refs.unsqueeze(0)) ** 2).sum(-1))                          # [U, R]
+    plain = (torch.softmax(1.0 / d, dim=1) * d).sum(dim=1) + 0.5 * torch.sqrt(((f - target) ** 2).sum(-1))
+    g_plain, = torch.autograd.grad(plain.sum(), plain_pred)
+    # Reference: torch autograd of the straightforward formula.
+    torch.testing.assert_close(fused.detach(), plain.detach(), rtol=1e-10, atol=1e-12)
+    torch.testing.assert_close(g_fused, g_plain, rtol=1e-7, atol=1e-10)
+    assert torch.autograd.gradcheck(lambda x: profile_term_per_user(x, t, 0.3, References(refs), target, 0.5),
+                                    (pred[:3, :20].detach().clone().requires_grad_(True),), eps=1e-6, atol=1e-6)
+
+
+def test_fused_step_term_without_references_is_the_extra_target_alone() -> None:
+    from tasks.engine.calibration import profile_term_per_user
+
+    t = thresholds(1.0, 5.0, 10)
+    pred = _block(5, 32, seed=34)
+    target = torch.linspace(0.05, 1.0, 10)
+    alone = 0.7 * torch.sqrt(((soft_cdf(pred, t, 0.1) - target) ** 2).sum(-1))
+    torch.testing.assert_close(profile_term_per_user(pred, t, 0.1, None, target, 0.7), alone, rtol=0, atol=0)
+    assert profile_term_per_user(pred, t, 0.1, None).abs().sum().item() == 0.0
