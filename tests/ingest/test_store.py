@@ -161,12 +161,15 @@ def _reference_latest(df: pd.DataFrame) -> set[tuple]:
     return {(r.user_id, r.item_id, r.source, r.rating, r.event_time) for r in last.itertuples()}
 
 
-@pytest.mark.parametrize("pack_limit,buckets", [(2**62, 4_194_301), (1, 4_194_301), (2**62, 7)],
-                         ids=["packed-key", "ranked-triples", "no-prefilter"])
-def test_latest_event_matches_a_pandas_reference(ws: Workspace, monkeypatch, pack_limit: int, buckets: int) -> None:
+@pytest.mark.parametrize("pack_limit,buckets,chunk", [(2**62, 4_194_301, 4_000_000), (1, 4_194_301, 4_000_000),
+                                                       (2**62, 7, 4_000_000), (2**62, 7, 500), (1, 7, 700)],
+                         ids=["packed-key", "ranked-triples", "no-prefilter", "grouped", "grouped-ranked"])
+def test_latest_event_matches_a_pandas_reference(ws: Workspace, monkeypatch, pack_limit: int, buckets: int,
+                                                 chunk: int) -> None:
     import tasks.ingest.store as store
     monkeypatch.setattr(store, "_PACK_LIMIT", pack_limit)    # 1 forces the path used for huge id spaces
     monkeypatch.setattr(store, "_BUCKETS", buckets)          # 7: the path of large windows (no counting pre-filter)
+    monkeypatch.setattr(store, "_CHUNK_ROWS", chunk)         # 500: large windows' repeats found group by group
     df = _random_ratings(3000, seed=1)
     out = write_partition(ws, "2026-11-01", df)
     assert pq.read_table(out["path"]).num_rows == len(df)
