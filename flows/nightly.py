@@ -147,7 +147,7 @@ def _work(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool,
         with night.stage("publish"):
             night.counts.update(training_counts(window, cand, preds))
             manifest = build_manifest(cfg, run_date, kind, base_id, ingested.files,
-                                      sorted(window["dt"].astype(str).unique().tolist()), night.counts,
+                                      sorted(map(str, window["dt"].unique())), night.counts,
                                       night.evaluation, night.gate, cand.rounds, cand.notes, cand.checkpoint.method)
             state = steps.with_io_retries(steps.publish_version, cfg)(
                 cfg, version_id, cand.checkpoint, shadow, preds, manifest, make_live=night.gate.promote and make_live)

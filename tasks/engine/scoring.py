@@ -35,8 +35,10 @@ def top_n(ckpt: Checkpoint, user_idx: np.ndarray, exclude_u: np.ndarray, exclude
     if len(user_idx) == 0 or k == 0:
         empty = np.empty(0)
         return empty.astype(np.int64), empty.astype(np.int64), empty.astype(np.float32), empty.astype(np.int32)
-    order = np.argsort(exclude_u, kind="stable")
-    ex_u, ex_i = np.asarray(exclude_u, np.int64)[order], np.asarray(exclude_i, np.int64)[order]
+    ex_u, ex_i = np.asarray(exclude_u), np.asarray(exclude_i)
+    if len(ex_u) > 1 and not (ex_u[1:] >= ex_u[:-1]).all():    # the nightly shards come sorted
+        order = np.argsort(ex_u, kind="stable")
+        ex_u, ex_i = ex_u[order], ex_i[order]
     block = users_per_block(n_items, budget_bytes)
     outs = []
     items_all = torch.arange(n_items)
@@ -50,9 +52,13 @@ def top_n(ckpt: Checkpoint, user_idx: np.ndarray, exclude_u: np.ndarray, exclude
             # it to every cell cost a pass over the block; it is added to the kept k values only.
             raw, user_const = ckpt.model.ranking_block(torch.from_numpy(u), items_all)
             # Mask rated items: locate each block user's excluded pairs via the sorted exclusion list.
-            lo, hi = np.searchsorted(ex_u, u, "left"), np.searchsorted(ex_u, u, "right")
+            # searchsorted casts both sides to a common type: compare in ex_u's own (int32) type, or every
+            # call would copy the whole exclusion list to int64
+            uk = u.astype(np.int32) if ex_u.dtype == np.int32 and len(ckpt.users) < 2**31 else u
+            lo, hi = np.searchsorted(ex_u, uk, "left"), np.searchsorted(ex_u, uk, "right")
             rows = np.repeat(np.arange(len(u)), hi - lo)
-            cols = ex_i[np.concatenate([np.arange(a, b) for a, b in zip(lo, hi)])] if len(rows) else np.empty(0, np.int64)
+            cols = ex_i[np.concatenate([np.arange(a, b) for a, b in zip(lo, hi)])].astype(np.int64) if len(rows) \
+                else np.empty(0, np.int64)
             raw[torch.from_numpy(rows), torch.from_numpy(cols)] = -np.inf
             vals, idx = torch.topk(raw, k, dim=1)
             vals, idx = (vals + user_const.view(-1, 1)).numpy(), idx.numpy()

@@ -64,6 +64,13 @@ class FitResult:
 # One step's loss, early stopping, the finished checkpoint
 # ---------------------------------------------------------------------------------------------
 
+def _int32(idx: np.ndarray) -> np.ndarray:
+    """Row indices ``[N]`` as int32 (half of int64's memory); refuses tables too large for it."""
+    if len(idx) and int(idx.max()) >= 2**31:
+        raise ValueError(f"{int(idx.max()) + 1} embedding rows do not fit int32 indices")
+    return idx.astype(np.int32)
+
+
 @dataclass
 class StepCalibration:
     """What a step needs for the distribution-calibration term: thresholds ``t`` [K], sharpness, the
@@ -79,7 +86,7 @@ class StepCalibration:
     scale: float
 
 
-def step_loss(model: Factoriser, u: torch.Tensor, i: torch.Tensor, r: torch.Tensor, w: torch.Tensor, norm: float,
+def step_loss(model: Factoriser, u: torch.Tensor, i: torch.Tensor, r: torch.Tensor, w: torch.Tensor | None, norm: float,
               weight_decay: float, pick: torch.Tensor | None = None, items: torch.Tensor | None = None,
               calib: StepCalibration | None = None, se_norm: float | None = None
               ) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor | None]:
@@ -92,7 +99,8 @@ def step_loss(model: Factoriser, u: torch.Tensor, i: torch.Tensor, r: torch.Tens
         pred, penalty, block = model.step_outputs(u, i, pick, items)
     else:
         pred, penalty, block = model.step_outputs(u, i)
-    se = (w * (pred - r) ** 2).sum() / (norm if se_norm is None else se_norm)
+    err = (pred - r) ** 2
+    se = (err if w is None else w * err).sum() / (norm if se_norm is None else se_norm)
     loss = se + weight_decay * penalty.sum() / norm
     term = None
     if block is not None:
@@ -248,8 +256,13 @@ class Training:
         tr_u, tr_i, tr_r, tr_w, weighting = training_examples(organic, self.users, self.items, self.all_pf_u,
                                                               self.all_pf_i, self.all_pf_r, scale, debias, self.notes)
         mine = ex.owns(tr_u)
-        self.T_u, self.T_i = torch.from_numpy(tr_u[mine]), torch.from_numpy(tr_i[mine])
-        self.T_r, self.T_w = torch.from_numpy(tr_r[mine]).float(), torch.from_numpy(tr_w[mine]).float()
+        # Memory: the examples are held for the whole run and gathered once a round, so they are kept
+        # small: int32 indices (embedding lookups take them; gradients and outputs are the same bits) and
+        # no weight column when every weight is 1 (w * x == x exactly, so the loss is unchanged).
+        self.T_u, self.T_i = (torch.from_numpy(_int32(x[mine])) for x in (tr_u, tr_i))
+        self.T_r = torch.from_numpy(tr_r[mine]).float()
+        self.T_w = None if bool((tr_w == 1.0).all()) else torch.from_numpy(tr_w[mine]).float()
+        del tr_i, tr_w
         self.self_normalise = weighting == "snips"
         sizes = ex.sizes(len(self.T_r))
         bs = min(model_cfg.batch_size, len(tr_r))
@@ -270,6 +283,7 @@ class Training:
             self.notes.append(self.profiles.note)
         organic_u = tr_u[:len(organic)]
         self.active_users = torch.from_numpy(np.unique(organic_u[ex.owns(organic_u)]))
+        del tr_u, organic_u
         self.probe_target = (empirical_cdf(torch.from_numpy(self.all_pf_r).float(), self.profiles.t)
                              if self.calibrated and debias.probe_target_weight > 0 and len(self.all_pf_r) else None)
 
@@ -363,10 +377,13 @@ class Training:
         # One gather per column per round, then contiguous slices: gathering each mini-batch from the
         # full columns cost ~0.5 ms per step at 24M ratings (four random reads per rating, one Python
         # call per column and step); the batches are the same.
-        S_u, S_i, S_r, S_w = self.T_u[perm], self.T_i[perm], self.T_r[perm], self.T_w[perm]
+        S_u, S_i, S_r = self.T_u[perm], self.T_i[perm], self.T_r[perm]
+        S_w = None if self.T_w is None else self.T_w[perm]
+        del perm
         steps = [slice(k * self.batch, (k + 1) * self.batch) for k in range(self.n_steps)]
         # Self-normalised IPS divides each step's squared error by the step's weight sum over all workers.
-        weight_sums = ex.sum(*(float(S_w[b].sum()) for b in steps)) if self.self_normalise else None
+        weight_sums = ex.sum(*(float(S_w[b].sum()) if S_w is not None else float(S_r[b].numel())
+                               for b in steps)) if self.self_normalise else None
         se_sum, term_sum = 0.0, 0.0
         # Term step j of m takes visits [j * visits // m, (j + 1) * visits // m) and lands on step
         # j * n_steps // m; with m = n_steps that is every step's even share.
@@ -379,7 +396,8 @@ class Training:
         for k, b in enumerate(steps):
             span = term_steps.get(k)
             pick = visit_order[span[0]:span[1]] if span else None
-            loss, se, term = step_loss(self.model, S_u[b], S_i[b], S_r[b], S_w[b], float(self.step_count[k]),
+            loss, se, term = step_loss(self.model, S_u[b], S_i[b], S_r[b], None if S_w is None else S_w[b],
+                                       float(self.step_count[k]),
                                        self.settings.model.weight_decay, pick,
                                        self.profiles.step_items(gen) if pick is not None and len(pick) else None,
                                        calib, se_norm=None if weight_sums is None else weight_sums[k])

@@ -286,7 +286,7 @@ def budget_from_window(window: pd.DataFrame, run_date: str, candidate: Checkpoin
     y = heldout["rating"].to_numpy(float)
     err_c = np.abs(candidate.score(users, items)[0] - y)
     err_b = np.abs(baseline.score(users, items)[0] - y) if baseline is not None else None
-    tonight = (window["dt"].astype(str) == run_date) & (window["source"] == PROBE)
+    tonight = (window["dt"] == run_date) & (window["source"] == PROBE)
     own = fitting["user_id"].astype(str).value_counts().to_numpy()
     return probe_budget(err_c, err_b, int(tonight.sum()), own, int(window["user_id"].nunique()),
                         own_pseudo_ratings(candidate), cfg.gate, confidence=cfg.evaluate.confidence,

@@ -230,7 +230,7 @@ def uniform_heldout(heldout: pd.DataFrame, window: pd.DataFrame, plans: Path) ->
     """
     if heldout.empty or not plans.is_dir():
         return heldout, 0
-    dates = set(window["dt"].astype(str).unique())
+    dates = set(map(str, window["dt"].unique()))
     planned = []
     for f in sorted(plans.glob("*.parquet")):
         if f.stem in dates:

@@ -7,6 +7,7 @@ a ratings window (user_id, item_id, rating in stars, source "organic"/"probe", d
 
 from __future__ import annotations
 
+import dataclasses
 from collections.abc import Sequence
 from dataclasses import dataclass
 
@@ -106,14 +107,19 @@ def judged_segments(window: pd.DataFrame, heldout: pd.DataFrame, margin: float) 
     probe ratings are held out are "unknown".
     """
     check_window(window, ("user_id", "item_id", "rating", "source"))
-    probe_rows = np.flatnonzero((window["source"] == PROBE).to_numpy(dtype=bool))
+    ratings = RatingsByUser.of(window)
+    probe_rows = np.flatnonzero(ratings.is_probe)
     if len(heldout) and len(probe_rows):
         probes = window.iloc[probe_rows]
         pairs = pd.MultiIndex.from_arrays([probes["user_id"].astype(str).to_numpy(),
                                            probes["item_id"].astype(str).to_numpy()])
         held = pd.MultiIndex.from_arrays([heldout["user_id"].astype(str).to_numpy(),
                                           heldout["item_id"].astype(str).to_numpy()])
-        keep = np.ones(len(window), dtype=bool)
-        keep[probe_rows[pairs.isin(held)]] = False
-        window = window[keep]
-    return user_skew_segments(window, margin)
+        # The held-out rows stop counting as probe ratings; the window itself is not copied (a copy
+        # without them held every window rating a second time). A member left with no counted rating
+        # is "unknown", as a member absent from the window is to the evaluation.
+        is_probe = ratings.is_probe.copy()
+        is_probe[probe_rows[pairs.isin(held)]] = False
+        ratings = dataclasses.replace(ratings, is_probe=is_probe)
+    per_user = ratings.per_user()
+    return pd.Series(segment_of(per_user["skew"], margin), index=per_user.index, name="segment")

@@ -34,6 +34,7 @@ PART_FILE = "part-0.parquet"
 STORE_DICTIONARY_PAGE = 256 * 2**20    # bytes; a day's distinct ids stay dictionary-encoded (see write_partition)
 _BUCKETS = 4_194_301     # a prime; counting buckets (int64, 32 MB) that pre-filter keys that may repeat (<= 1M rows)
 _PACK_LIMIT = 2**62      # (user, item, source) codes packed into one int64 key below this many combinations
+_CHUNK_ROWS = 4_000_000  # rows per hash table when a large window's keys are checked for repeats, group by group
 
 
 ID_COLUMNS = ("user_id", "item_id", "source")     # read as dictionary-encoded columns (integer codes)
@@ -52,6 +53,28 @@ def _sorted_dictionary(col: pa.ChunkedArray) -> pa.DictionaryArray:
     codes = np.concatenate([c.indices.to_numpy(zero_copy_only=False) for c in col.chunks]) if col.num_chunks \
         else np.empty(0, np.int32)
     return pa.DictionaryArray.from_arrays(pa.array(rank[codes], pa.int32()), dictionary.take(pa.array(order)))
+
+
+def _merge_shared_dictionaries(col: pa.ChunkedArray) -> pa.ChunkedArray:
+    """``col`` (dictionary chunks) with each run of consecutive chunks that carry equal dictionaries as
+    one chunk. Parquet's reader hands out a row group in many chunks that all carry the row group's
+    dictionary; unifying dictionaries hashes every chunk's dictionary, so a 3-day window of a 100M-rating
+    store (78 chunks of about 475k member ids) spent 8.6 s there. Equal dictionaries are found by a
+    byte comparison, not by hashing."""
+    if col.num_chunks < 2 or not pa.types.is_dictionary(col.type):
+        return col
+    merged, run = [], [col.chunk(0)]
+    for chunk in col.chunks[1:]:
+        if chunk.dictionary.equals(run[0].dictionary):
+            run.append(chunk)
+            continue
+        merged.append(run)
+        run = [chunk]
+    merged.append(run)
+    if len(merged) == col.num_chunks:
+        return col
+    return pa.chunked_array([run[0] if len(run) == 1 else pa.DictionaryArray.from_arrays(
+        pa.concat_arrays([c.indices for c in run]), run[0].dictionary) for run in merged], col.type)
 
 
 def _codes(col: pa.ChunkedArray) -> np.ndarray:
@@ -84,12 +107,15 @@ def latest_mask(table: pa.Table) -> np.ndarray:
     src = _is_probe(table["source"])
     n_item = int(item.max()) + 1
     if (int(user.max()) + 1) * n_item * 2 < _PACK_LIMIT:
-        # (user * n_item + item) * 2 + src, built in place in one int64 array (8 bytes a row, no temporaries)
-        key = user.astype(np.int64)
-        key *= n_item
-        key += item
-        key *= 2
-        key += src
+        def key_of(rows):   # (user * n_item + item) * 2 + src, int64, for the rows ``rows`` (slice or indices)
+            key = user[rows].astype(np.int64)
+            key *= n_item
+            key += item[rows]
+            key *= 2
+            key += src[rows]
+            return key
+        rows = _repeated_rows(user, key_of)
+        key_rows = key_of(rows)
     else:   # too many distinct ids to pack into one int64: rank the triples instead
         user, item, src = user.astype(np.int64), item.astype(np.int64), src.astype(np.int64)
         order = np.lexsort((src, item, user))
@@ -97,24 +123,52 @@ def latest_mask(table: pa.Table) -> np.ndarray:
         new = np.append(True, np.any(triple[1:] != triple[:-1], axis=1))
         key = np.empty(n, np.int64)
         key[order] = np.cumsum(new) - 1
-    # Keys that repeat (linear; a sort of every key was most of the window read): rows whose key shares a
-    # bucket of a counting array with another row are candidates (every repeat is among them, plus a few
-    # collisions), and a hash table settles which candidates' keys repeat.
-    if 4 * n <= _BUCKETS:       # few rows per bucket: the pre-filter leaves few candidates
-        bucket = key % _BUCKETS
-        cand = np.flatnonzero(np.bincount(bucket, minlength=_BUCKETS)[bucket] > 1)
-        del bucket
-    else:
-        cand = np.arange(n)
-    rows = cand[pd.Series(key[cand], copy=False).duplicated(keep=False).to_numpy()]
+        del order, triple, new
+        rows = _repeated_rows(user, lambda r: key[r])
+        key_rows = key[rows]
     if not len(rows):
         return keep
     times = table["event_time"].cast(pa.int64()).to_numpy(zero_copy_only=False)[rows]
-    sub = np.lexsort((rows, times, key[rows]))       # by key, then time, then row: the last one wins
-    k = key[rows][sub]
+    sub = np.lexsort((rows, times, key_rows))       # by key, then time, then row: the last one wins
+    k = key_rows[sub]
     last = np.append(k[1:] != k[:-1], True)
     keep[rows[sub][~last]] = False
     return keep
+
+
+def _repeated_rows(user: np.ndarray, key_of) -> np.ndarray:
+    """Rows (ascending) whose key repeats; ``key_of(rows)`` gives the int64 keys of ``rows`` (a slice or
+    indices), and equal keys have equal ``user``.
+
+    Linear, no sort of every key (that was most of the window read). Small windows: rows whose key
+    shares a bucket of a counting array with another row are candidates (every repeat is among them,
+    plus a few collisions), and a hash table settles which candidates' keys repeat. Large windows: the
+    rows are grouped by ``user % parts`` (a stable radix sort of small integers), and each group, about
+    ``_CHUNK_ROWS`` rows, gets its own hash table, since a repeat never crosses groups. That holds about
+    12 bytes a row plus one group's table, instead of every row's key, index and hash entry at once.
+    """
+    n = len(user)
+    if 4 * n <= _BUCKETS:       # few rows per bucket: the pre-filter leaves few candidates
+        key = key_of(slice(None))
+        bucket = key % _BUCKETS
+        cand = np.flatnonzero(np.bincount(bucket, minlength=_BUCKETS)[bucket] > 1)
+        del bucket
+        return cand[pd.Series(key[cand], copy=False).duplicated(keep=False).to_numpy()]
+    parts = -(-n // _CHUNK_ROWS)
+    if parts == 1:
+        return np.flatnonzero(pd.Series(key_of(slice(None)), copy=False).duplicated(keep=False).to_numpy())
+    # int16 groups: numpy's stable sort of 16-bit integers is a radix sort (linear).
+    group = (user % parts).astype(np.int16 if parts <= 2**15 - 1 else np.int64)
+    order = np.argsort(group, kind="stable")          # rows of group 0, then 1, ...; ascending within each
+    ends = np.cumsum(np.bincount(group, minlength=parts))
+    del group
+    found = []
+    for a, b in zip(np.concatenate([[0], ends[:-1]]), ends):
+        rows = order[a:b]
+        dup = pd.Series(key_of(rows), copy=False).duplicated(keep=False).to_numpy()
+        if dup.any():
+            found.append(rows[dup])
+    return np.sort(np.concatenate(found)) if found else np.empty(0, np.int64)
 
 
 def _is_probe(col: pa.ChunkedArray | pa.Array) -> np.ndarray:
@@ -162,8 +216,10 @@ def write_partition(ws: Workspace, run_date: str, valid: pd.DataFrame | pa.Table
     # One dictionary page per text column, however many distinct ids a day has: with pyarrow's default
     # (1 MB) a 10M-rating window's days fell back to plain pages part-way, and the window read then
     # hashed every row's id (reading ten such days with read_dictionary: 0.46 s, with this 0.26 s;
-    # files about 10% larger).
-    atomic_write_table(path, table, dictionary_pagesize_limit=STORE_DICTIONARY_PAGE)
+    # files about 10% larger). One row group per day: each row group carries its own dictionary, so a day
+    # of 4 row groups gave the window read 4 dictionaries of the day's ids to unify, not 1.
+    atomic_write_table(path, table, dictionary_pagesize_limit=STORE_DICTIONARY_PAGE,
+                       row_group_size=max(1, table.num_rows))
     return {"path": os.fspath(path), "rows": table.num_rows}
 
 
@@ -211,6 +267,8 @@ def read_window_table(ws: Workspace, run_date: str, days: int) -> pa.Table:
     for k, d in enumerate(dates):
         t = pq.read_table(ws.partition(ws.store, d) / PART_FILE, columns=schemas.RATINGS.names,
                           read_dictionary=list(ID_COLUMNS))
+        for c in ID_COLUMNS:
+            t = t.set_column(t.schema.get_field_index(c), c, _merge_shared_dictionaries(t[c]))
         tables.append(t.append_column("dt", pa.DictionaryArray.from_arrays(
             pa.array(np.full(t.num_rows, k, np.int32)), pa.array(dates, pa.string()))))
     if not tables:
@@ -251,7 +309,13 @@ def read_window(ws: Workspace, run_date: str, days: int, categorical: bool = Fal
     table = read_window_table(ws, run_date, days)
     if categorical:
         # self_destruct: each Arrow column is released once converted (no second copy of the window).
-        return table.to_pandas(self_destruct=True, split_blocks=True)
+        frame = table.to_pandas(self_destruct=True, split_blocks=True)
+        del table
+        # Arrow's allocator keeps the pages the read freed (decoded Parquet pages, the days' separate
+        # dictionaries, the pre-filter columns) for its own reuse; training allocates through numpy and
+        # torch, which cannot use them. Hand them back (about 10% of the read's peak).
+        pa.default_memory_pool().release_unused()
+        return frame
     for c in (*ID_COLUMNS, "dt"):
         table = table.set_column(table.schema.get_field_index(c), c, table[c].cast(pa.string()))
     return table.to_pandas()

@@ -139,7 +139,7 @@ def measure_night(cfg: Config, ws: Workspace, run_date: str, window: pd.DataFram
     """Before the gate: tonight's metrics row from the night's results (``version_id``: the id the
     candidate will be published under), judged by the alert rules (:func:`judge_row`)."""
     cand = trained.candidate
-    tonight = window[window["dt"].astype(str) == run_date]
+    tonight = window[window["dt"] == run_date]   # categorical or text: compared as is (no text per row)
     volumes = {"rows_read": ingested.rows_read, "rows_ingested": ingested.rows_valid,
                "rows_quarantined": len(ingested.rejected),
                "quarantined_by_reason": rejected_by_reason(ingested.rejected),

@@ -23,8 +23,8 @@ class ScoringShard:
     """Users of one scoring task and the (user, item) pairs they already rated (checkpoint indices)."""
 
     users: np.ndarray       # [U] int64
-    exclude_u: np.ndarray   # [E] int64
-    exclude_i: np.ndarray   # [E] int64
+    exclude_u: np.ndarray   # [E] int32 (int64 beyond 2**31 rows), ascending
+    exclude_i: np.ndarray   # [E] int32 likewise
 
 
 def plan_shards(ckpt: Checkpoint, window: pd.DataFrame, budget_mb: float, shards: int = 1) -> list[ScoringShard]:
@@ -37,22 +37,34 @@ def plan_shards(ckpt: Checkpoint, window: pd.DataFrame, budget_mb: float, shards
     u_idx = u_idx[u_idx >= 0]
     ex_u, ex_i = ckpt.users.lookup(window["user_id"]), ckpt.items.lookup(window["item_id"])
     ok = (ex_u >= 0) & (ex_i >= 0)
-    ex_u, ex_i = ex_u[ok], ex_i[ok]
+    if not ok.all():
+        ex_u, ex_i = ex_u[ok], ex_i[ok]
+    del ok
     block = users_per_block(len(ckpt.items), budget_mb * 2**20)
     n_blocks = -(-len(u_idx) // block)
     per_shard = block * max(1, -(-n_blocks // max(1, shards)))
     cuts = list(range(0, len(u_idx), per_shard)) or [0]
-    shard_of = np.full(len(ckpt.users), -1, np.int64)
+    shard_of = np.full(len(ckpt.users), -1, np.int16 if len(cuts) < 2**15 else np.int64)
     for k, s in enumerate(cuts):
         shard_of[u_idx[s:s + per_shard]] = k
+    # Each shard's pairs sorted by user, a user's pairs in window order (stable): the order top_n reads
+    # them in, so it needs no sort and no copy of its own. Memory: the window's pairs are held once, as
+    # int32, next to one int64 ordering (a sort per shard and int64 copies held them about three times).
     ex_shard = shard_of[ex_u]
-    order = np.argsort(ex_shard, kind="stable")         # keeps each shard's pairs in window order
+    order = np.lexsort((ex_u, ex_shard))
     bounds = np.searchsorted(ex_shard[order], np.arange(len(cuts) + 1))
+    del ex_shard
     out = []
     for k, s in enumerate(cuts):
         sel = order[bounds[k]:bounds[k + 1]]
-        out.append(ScoringShard(u_idx[s:s + per_shard], ex_u[sel], ex_i[sel]))
+        out.append(ScoringShard(u_idx[s:s + per_shard], _index32(ex_u, sel), _index32(ex_i, sel)))
     return out
+
+
+def _index32(idx: np.ndarray, sel: np.ndarray) -> np.ndarray:
+    """``idx[sel]`` as int32 when the values fit (checkpoint rows of one shard's rated pairs)."""
+    out = idx[sel]
+    return out.astype(np.int32) if not len(out) or int(out.max()) < 2**31 else out
 
 
 def score_shard(ckpt: Checkpoint, shard: ScoringShard, n: int, budget_mb: float

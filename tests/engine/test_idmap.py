@@ -86,3 +86,14 @@ def test_warm_start_appends_new_ids_and_fine_tunes_a_bounded_number_of_epochs(tm
     assert float((new_p - old_p).abs().mean()) < float(old_p.abs().mean())
     scores, flags = second.checkpoint.score(["member-000079"], [old_items[0]])
     assert np.isfinite(scores).all() and flags[0] == ""
+
+
+def test_lookup_of_categorical_ids_equals_the_lookup_of_their_text():
+    """The window hands ids over as categoricals (codes into sorted texts); the lookup indexes by the codes
+    and must agree with the text lookup on unknown ids, missing values and unobserved categories."""
+    m = IdMap(["b", "a", "c"])
+    cat = pd.Series(pd.Categorical(["a", "c", None, "z", "a", "c"], categories=["a", "b", "c", "z", "never"]))
+    assert m.lookup(cat).tolist() == m.lookup(cat.astype(object)).tolist() == [1, 2, -1, -1, 1, 2]
+    assert m.lookup(cat).dtype == np.int64
+    assert IdMap().lookup(cat).tolist() == [-1] * 6
+    assert m.lookup(pd.Series(pd.Categorical([], categories=[]))).tolist() == []

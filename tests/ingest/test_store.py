@@ -161,12 +161,15 @@ def _reference_latest(df: pd.DataFrame) -> set[tuple]:
     return {(r.user_id, r.item_id, r.source, r.rating, r.event_time) for r in last.itertuples()}
 
 
-@pytest.mark.parametrize("pack_limit,buckets", [(2**62, 4_194_301), (1, 4_194_301), (2**62, 7)],
-                         ids=["packed-key", "ranked-triples", "no-prefilter"])
-def test_latest_event_matches_a_pandas_reference(ws: Workspace, monkeypatch, pack_limit: int, buckets: int) -> None:
+@pytest.mark.parametrize("pack_limit,buckets,chunk", [(2**62, 4_194_301, 4_000_000), (1, 4_194_301, 4_000_000),
+                                                       (2**62, 7, 4_000_000), (2**62, 7, 500), (1, 7, 700)],
+                         ids=["packed-key", "ranked-triples", "no-prefilter", "grouped", "grouped-ranked"])
+def test_latest_event_matches_a_pandas_reference(ws: Workspace, monkeypatch, pack_limit: int, buckets: int,
+                                                 chunk: int) -> None:
     import tasks.ingest.store as store
     monkeypatch.setattr(store, "_PACK_LIMIT", pack_limit)    # 1 forces the path used for huge id spaces
     monkeypatch.setattr(store, "_BUCKETS", buckets)          # 7: the path of large windows (no counting pre-filter)
+    monkeypatch.setattr(store, "_CHUNK_ROWS", chunk)         # 500: large windows' repeats found group by group
     df = _random_ratings(3000, seed=1)
     out = write_partition(ws, "2026-11-01", df)
     assert pq.read_table(out["path"]).num_rows == len(df)
@@ -210,11 +213,12 @@ def _old_read_window(days: list[pd.DataFrame], dates: list[str]) -> pd.DataFrame
 def test_window_read_on_codes_equals_the_text_read_on_tricky_cases(ws: Workspace) -> None:
     """Duplicates within and across days, equal times (later date / later row wins), one pair rated as
     organic and as probe, ids new on later days, non-ASCII ids (sort order of the dictionary), and store
-    files written three ways: as the store writes them, without Parquet dictionary pages (plain text) and
-    with a dictionary that overflows its page (pyarrow falls back to plain pages mid-column)."""
+    files written four ways: as the store writes them, without Parquet dictionary pages (plain text),
+    with a dictionary that overflows its page (pyarrow falls back to plain pages mid-column) and in
+    several row groups, each with its own dictionary (as the store wrote them before)."""
     rng = np.random.default_rng(7)
     ids = ["m1", "m10", "m2", "Ärger", "zoë", "émile", "m1 ", "日本"]
-    days, dates = [], ["2026-11-01", "2026-11-02", "2026-11-03"]
+    days, dates = [], ["2026-11-01", "2026-11-02", "2026-11-03", "2026-11-04"]
     for k, d in enumerate(dates):
         n = 400
         users = rng.choice(ids[:3 + 2 * k], n)             # later days bring new ids
@@ -223,18 +227,33 @@ def test_window_read_on_codes_equals_the_text_read_on_tricky_cases(ws: Workspace
         df = frame([(u, i, float(rng.integers(1, 6)), f"2026-11-0{1 + (k if h else 0)}T0{h}:00:00",
                      "probe" if rng.random() < 0.2 else "organic") for u, i, h in zip(users, items, hours)])
         days.append(df)
-    write_partition(ws, dates[0], days[0])
+    out = write_partition(ws, dates[0], days[0])
+    assert pq.ParquetFile(out["path"]).metadata.num_row_groups == 1      # one dictionary per day
     for d, df, kwargs in ((dates[1], days[1], {"use_dictionary": False}),
-                          (dates[2], days[2], {"dictionary_pagesize_limit": 16, "data_page_size": 64})):
+                          (dates[2], days[2], {"dictionary_pagesize_limit": 16, "data_page_size": 64}),
+                          (dates[3], days[3], {"row_group_size": 50})):
         table = pa.Table.from_pandas(df[schemas.STORE.names], preserve_index=False).cast(schemas.STORE)
         (ws.store / f"dt={d}").mkdir(parents=True)
         pq.write_table(table, ws.store / f"dt={d}" / "part-0.parquet", **kwargs)
     want = _old_read_window(days, dates)
-    got = read_window(ws, dates[-1], 3)
+    got = read_window(ws, dates[-1], 4)
     pd.testing.assert_frame_equal(got, want.astype({c: got[c].dtype for c in want.columns}))
-    cat = read_window(ws, dates[-1], 3, categorical=True)
+    cat = read_window(ws, dates[-1], 4, categorical=True)
     for c in ("user_id", "item_id"):
         cats = list(cat[c].cat.categories)
         assert cats == sorted(cats)                         # code order is text order (Python's sort)
         assert set(cats) == set(want[c])
     assert cat["user_id"].astype(str).tolist() == want["user_id"].tolist()
+
+
+def test_chunks_that_share_a_row_groups_dictionary_are_merged_before_unifying(tmp_path) -> None:
+    """Parquet's reader hands a row group out in several chunks, each carrying the row group's dictionary;
+    they become one chunk per dictionary (unifying then hashes each dictionary once), same values."""
+    from tasks.ingest.store import _merge_shared_dictionaries
+    n = 600_000     # row groups of 300k rows: the reader hands each out in chunks of about 128k
+    ids = np.array([f"m{k}" for k in range(5000)])[np.random.default_rng(0).integers(0, 5000, n)]
+    pq.write_table(pa.table({"user_id": ids}), tmp_path / "f.parquet", row_group_size=n // 2)
+    col = pq.read_table(tmp_path / "f.parquet", read_dictionary=["user_id"])["user_id"]
+    merged = _merge_shared_dictionaries(col)
+    assert col.num_chunks > 2 and merged.num_chunks == 2             # two row groups, two dictionaries
+    assert merged.cast(pa.string()).to_pylist() == ids.tolist()
