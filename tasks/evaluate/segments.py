@@ -90,7 +90,11 @@ def user_skew_segments(window: pd.DataFrame, margin: float) -> pd.Series:
     exceeds probe mean by more than ``margin``), "down" (falls short by more), "neutral", or "unknown"
     (no probe rating or no organic rating in the window).
     """
-    per_user = user_skew(window)
+    return _segments(user_skew(window), margin)
+
+
+def _segments(per_user: pd.DataFrame, margin: float) -> pd.Series:
+    """Segment label per row of ``per_user`` (:func:`user_skew`'s frame), named ``segment``."""
     return pd.Series(segment_of(per_user["skew"], margin), index=per_user.index, name="segment")
 
 
@@ -121,5 +125,4 @@ def judged_segments(window: pd.DataFrame, heldout: pd.DataFrame, margin: float) 
         is_probe = ratings.is_probe.copy()
         is_probe[probe_rows[pairs.isin(held)]] = False
         ratings = dataclasses.replace(ratings, is_probe=is_probe)
-    per_user = ratings.per_user()
-    return pd.Series(segment_of(per_user["skew"], margin), index=per_user.index, name="segment")
+    return _segments(ratings.per_user(), margin)
