@@ -9,6 +9,7 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 import pyarrow.parquet as pq
 import pytest
@@ -164,6 +165,14 @@ def test_scoring_shards_are_whole_blocks_and_change_nothing():
     assert len(shards) == 5 and all(len(s.users) % block == 0 for s in shards[:-1])
     assert sum(len(s.users) for s in shards) == logs.organic["user_id"].nunique()
     assert sum(len(s.exclude_u) for s in shards) == len(logs.organic)          # every rated pair, once
+    # Each shard holds exactly its own users' rated pairs, sorted by user (what top_n reads without a
+    # sort); reference: the window's pairs looked up and grouped with pandas.
+    pairs = pd.DataFrame({"u": ckpt.users.lookup(logs.organic["user_id"]), "i": ckpt.items.lookup(logs.organic["item_id"])})
+    for s in shards:
+        assert s.exclude_u.dtype == s.exclude_i.dtype == np.int32 and bool(np.all(np.diff(s.exclude_u) >= 0))
+        got = pd.DataFrame({"u": s.exclude_u, "i": s.exclude_i}).sort_values(["u", "i"], ignore_index=True)
+        want = pairs[pairs["u"].isin(s.users)].astype(np.int32).sort_values(["u", "i"], ignore_index=True)
+        pd.testing.assert_frame_equal(got, want)
     parts = [predictions.score_shard(ckpt, s, 10, budget_mb) for s in reversed(shards)][::-1]
     pd.testing.assert_frame_equal(predictions.assemble(ckpt, parts), whole)
     assert list(whole["user_id"].drop_duplicates()) == sorted(logs.organic["user_id"].unique())
