@@ -175,4 +175,14 @@ def test_scoring_shards_are_whole_blocks_and_change_nothing():
         pd.testing.assert_frame_equal(got, want)
     parts = [predictions.score_shard(ckpt, s, 10, budget_mb) for s in reversed(shards)][::-1]
     pd.testing.assert_frame_equal(predictions.assemble(ckpt, parts), whole)
+    # The id columns are built in Arrow from the distinct ids; the frame (and the Parquet file published
+    # from it) is the one a frame of Python strings gives.
+    u, i, score, rank = (np.concatenate(x) for x in zip(*parts))
+    by_objects = pd.DataFrame({"user_id": ckpt.users.ids[u].to_numpy(dtype=object),
+                               "item_id": ckpt.items.ids[i].to_numpy(dtype=object),
+                               "score": score.astype(np.float32), "rank": rank.astype(np.int32)})
+    pd.testing.assert_frame_equal(whole, by_objects)
+    import pyarrow as pa
+    assert pa.Table.from_pandas(whole, preserve_index=False).equals(
+        pa.Table.from_pandas(by_objects, preserve_index=False), check_metadata=True)
     assert list(whole["user_id"].drop_duplicates()) == sorted(logs.organic["user_id"].unique())
