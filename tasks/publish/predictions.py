@@ -95,9 +95,13 @@ def score_shard(ckpt: Checkpoint, shard: ScoringShard, n: int, budget_mb: float
 
 def assemble(ckpt: Checkpoint, parts: list[tuple[np.ndarray, ...]]) -> pd.DataFrame:
     """Frame with schemas.PREDICTIONS columns from the shards' results, in plan order (user then rank)."""
-    u, i, score, rank = (np.concatenate(x) for x in zip(*parts))
-    return pd.DataFrame({"user_id": _id_column(ckpt.users.ids, u), "item_id": _id_column(ckpt.items.ids, i),
-                         "score": score.astype(np.float32), "rank": rank.astype(np.int32)})
+    def joined(k: int) -> np.ndarray:           # one output column at a time: the others are not held meanwhile
+        return np.concatenate([p[k] for p in parts])
+
+    users = _id_column(ckpt.users.ids, joined(0))
+    items = _id_column(ckpt.items.ids, joined(1))
+    return pd.DataFrame({"user_id": users, "item_id": items, "score": joined(2).astype(np.float32, copy=False),
+                         "rank": joined(3).astype(np.int32, copy=False)}, copy=False)
 
 
 def _id_column(ids: pd.Index, rows: np.ndarray):
