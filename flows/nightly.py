@@ -11,7 +11,7 @@ from prefect.artifacts import create_markdown_artifact, create_table_artifact
 from flows import run_guard, runners
 from flows.alert_channels import prefect_channels
 from flows.night_record import NightRecord, epoch_seconds, input_counts, training_counts
-from tasks import failpoints, ledger, steps
+from tasks import allocators, failpoints, ledger, steps
 from tasks.config import Config
 from tasks.dates import parse_date, yesterday
 from tasks.engine.checkpoint import Checkpoint
@@ -37,6 +37,7 @@ def nightly(cfg: Config, run_date: str | None = None, kind: str = "nightly", mak
     ``cold`` starts from scratch (a damaged base is otherwise refused). A night already done with the same
     inputs is not run again (one line says so) unless ``force`` or ``cold``; see ``flows/run_guard.py`` for
     the lock wait, dead runs and signals."""
+    allocators.return_freed_memory()     # freed window-sized buffers go back to the system (tasks/allocators.py)
     run_date = run_date or yesterday(cfg.runtime.timezone)
     parse_date(run_date)   # a malformed date is refused before the ledger records a night
     ws = Workspace.at(cfg.paths.workspace)

@@ -83,8 +83,10 @@ def quarantine_and_store(cfg: Config, run_date: str, result: ingest.IngestResult
 
 @task(name="read-window", **IO)
 def read_window(cfg: Config, run_date: str) -> pd.DataFrame:
-    # Ids as categoricals (integer codes + sorted distinct texts): strings only at the edges.
-    return store.read_window(Workspace.at(cfg.paths.workspace), run_date, cfg.window.days, categorical=True)
+    # Ids as categoricals (integer codes + sorted distinct texts): strings only at the edges. No event
+    # times: they choose the latest event per key inside the read, and no later stage reads them.
+    return store.read_window(Workspace.at(cfg.paths.workspace), run_date, cfg.window.days, categorical=True,
+                             times=False)
 
 
 @task(name="load-base", **IO)

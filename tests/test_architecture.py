@@ -21,7 +21,7 @@ REPO = Path(__file__).resolve().parents[1]
 TASKS = REPO / "tasks"
 
 #: The foundation: modules every stage may use (config, contracts, workspace layout, small helpers).
-FOUNDATION = ("config", "schemas", "workspace", "files", "dates", "ledger", "lock", "failpoints")
+FOUNDATION = ("config", "schemas", "workspace", "files", "dates", "ledger", "lock", "failpoints", "allocators")
 #: Stages in data-flow order: logs -> store -> model -> evaluate and gate -> versions -> monitor; then
 #: the operations built on all of them.
 STAGES = ("engine", "ingest", "train", "evaluate", "publish", "monitor", "operate")

@@ -55,7 +55,8 @@ def check_frame(df: pd.DataFrame | None, name: str, scale: Scale) -> pd.DataFram
         k = int(np.flatnonzero(off)[0])
         raise EngineInputError(f"{name} ratings: {int(off.sum())} rating(s) off the scale "
                                f"[{scale.min}, {scale.max}], first at row {k} (value {r[k]})")
-    df["rating"] = r
+    if df["rating"].dtype != np.float64:     # a float64 column is kept as it is (assigning copies it)
+        df["rating"] = r
     return df.reset_index(drop=True)
 
 
@@ -68,8 +69,10 @@ def prepare_model(organic: pd.DataFrame, probe: pd.DataFrame, model_cfg: ModelSe
     so every data-parallel worker gets the same initial state."""
     users = IdMap(previous.users.ids) if previous else IdMap()
     items = IdMap(previous.items.ids) if previous else IdMap()
-    new_users = users.extend(pd.concat([organic["user_id"], probe["user_id"]]))
-    new_items = items.extend(pd.concat([organic["item_id"], probe["item_id"]]))
+    # ignore_index: concatenating the frames' RangeIndexes would build (and cache on them, for as long as
+    # the frames live) an int64 array of every row number: 8 bytes a window rating.
+    new_users = users.extend(pd.concat([organic["user_id"], probe["user_id"]], ignore_index=True))
+    new_items = items.extend(pd.concat([organic["item_id"], probe["item_id"]], ignore_index=True))
     if previous is not None:
         model = copy.deepcopy(previous.model)
         model.grow(len(users), len(items), model_cfg.init_scale, gen)
@@ -91,15 +94,17 @@ def rating_levels(scale: Scale) -> np.ndarray:
 
 def training_examples(organic: pd.DataFrame, users: IdMap, items: IdMap, pf_u: np.ndarray, pf_i: np.ndarray,
                       pf_r: np.ndarray, scale: Scale, debias: DebiasSettings, notes: list[str]
-                      ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, str | None]:
+                      ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray | None, str | None]:
     """The squared-error examples of a run: organic ratings as indices (first, in their order), each with
     its weight (IPS/SNIPS propensity weights from the fitting probe ``pf_*`` when the method or its
     companion is one of them), then the fitting probe ratings at ``debias.probe_weight`` for probe
-    up-weighting. Returns ``(users [N], items [N], ratings [N], weights [N], "ips"/"snips" or None)``."""
+    up-weighting. Returns ``(users [N], items [N], ratings [N], weights [N] or None when every weight is
+    1, "ips"/"snips" or None)``. Memory: indices are int32 where they fit and the organic ratings are the
+    frame's own column (read only), so a window-sized run adds 8 bytes a rating here, not 32."""
     method, companion = debias.method, debias.companion
-    tr_u, tr_i = users.lookup(organic["user_id"]), items.lookup(organic["item_id"])
-    tr_r = organic["rating"].to_numpy(dtype=float, copy=True)
-    tr_w = np.ones(len(organic))
+    tr_u, tr_i = users.lookup(organic["user_id"], small=True), items.lookup(organic["item_id"], small=True)
+    tr_r = organic["rating"].to_numpy(dtype=float)
+    tr_w = None
     weighting = next((w for w in (method, companion) if w in ("ips", "snips")), None)
     if weighting:
         if len(pf_r) == 0:
@@ -111,5 +116,6 @@ def training_examples(organic: pd.DataFrame, users: IdMap, items: IdMap, pf_u: n
     if "probe_upweight" in (method, companion):
         tr_u, tr_i = np.concatenate([tr_u, pf_u]), np.concatenate([tr_i, pf_i])
         tr_r = np.concatenate([tr_r, pf_r])
-        tr_w = np.concatenate([tr_w, np.full(len(pf_r), debias.probe_weight)])
+        tr_w = np.concatenate([np.ones(len(organic)) if tr_w is None else tr_w,
+                               np.full(len(pf_r), debias.probe_weight)])
     return tr_u, tr_i, tr_r, tr_w, weighting

@@ -38,7 +38,8 @@ import pandas as pd
 
 from tasks.engine.recalibration import MonotoneMap
 from tasks.engine.settings import DebiasSettings, Scale
-from tasks.engine.skew_model import FEATURE_NAMES, fit_ridge, standardise, user_features, user_mean_prediction
+from tasks.engine.skew_model import (FEATURE_NAMES, OrganicRows, fit_ridge, standardise, user_features,
+                                     user_mean_prediction)
 
 #: Clip of the per-user slope. An upper clip of 2 cost 24 points of gap closed under strong selection on
 #: the open-data check (lovers' raw scores are compressed, their fitted slopes reach ~5), so it is wide.
@@ -90,9 +91,11 @@ def _own_update(n_users: int, u: np.ndarray, resid: np.ndarray, prior: float) ->
     return np.divide(sums, denom, out=np.zeros(n_users), where=denom > 0), m, facts
 
 
-def fit_correction(ckpt, organic: pd.DataFrame, probe_fit: pd.DataFrame, debias: DebiasSettings,
+def fit_correction(ckpt, organic: pd.DataFrame | OrganicRows, probe_fit: pd.DataFrame, debias: DebiasSettings,
                    scale: Scale) -> PerUserCorrection:
-    """Fit the per-user correction of ``ckpt`` (a trained checkpoint) on the probe fitting split."""
+    """Fit the per-user correction of ``ckpt`` (a trained checkpoint) on the probe fitting split.
+    ``organic``: the run's organic ratings, as a frame or already as ``ckpt``'s rows (training passes
+    those: it refits the correction every round)."""
     n_users = len(ckpt.users)
     design = debias.per_user_design
     if probe_fit.empty:
@@ -113,10 +116,9 @@ def fit_correction(ckpt, organic: pd.DataFrame, probe_fit: pd.DataFrame, debias:
         offset, m, facts = _own_update(n_users, pu, y - fmap(raw), debias.per_user_prior)
         return PerUserCorrection(fmap, offset, None, {"design": "offset", "own_update": facts}, notes)
 
-    ou = ckpt.users.lookup(organic["user_id"])
-    oi = ckpt.items.lookup(organic["item_id"])
-    z = standardise(user_features(ckpt.model, ou, oi, organic["rating"].to_numpy(float),
-                                  scale.min, scale.max, scale.step))
+    if not isinstance(organic, OrganicRows):
+        organic = OrganicRows.lookup(organic, ckpt.users, ckpt.items)
+    z = standardise(user_features(ckpt.model, organic, scale.min, scale.max, scale.step))
     centre = user_mean_prediction(ckpt.model)
     affine = design == "skew_affine"
 

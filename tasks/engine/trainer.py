@@ -44,6 +44,7 @@ from tasks.engine.recalibration import MonotoneMap
 from tasks.engine.reference import cap_reference_users, draw_reference_users, probe_errors, reference_probabilities
 from tasks.engine.row_adam import RowAdam
 from tasks.engine.settings import DebiasSettings, Scale, Settings
+from tasks.engine.skew_model import OrganicRows
 from tasks.engine.splits import heldout_mask
 
 
@@ -60,12 +61,18 @@ class FitResult:
     notes: list[str] = field(default_factory=list)
 
 
+#: Rows of the examples gathered at once for a round's mini-batches (see ``Training._batches``).
+_GATHER_ROWS = 1 << 20
+
 # ---------------------------------------------------------------------------------------------
 # One step's loss, early stopping, the finished checkpoint
 # ---------------------------------------------------------------------------------------------
 
 def _int32(idx: np.ndarray) -> np.ndarray:
-    """Row indices ``[N]`` as int32 (half of int64's memory); refuses tables too large for it."""
+    """Row indices ``[N]`` as int32 (half of int64's memory; int32 input is returned as it is); refuses
+    tables too large for it."""
+    if idx.dtype == np.int32:
+        return idx
     if len(idx) and int(idx.max()) >= 2**31:
         raise ValueError(f"{int(idx.max()) + 1} embedding rows do not fit int32 indices")
     return idx.astype(np.int32)
@@ -139,7 +146,7 @@ class EarlyStopping:
         return self.best_epoch
 
 
-def apply_correction(ckpt: Checkpoint, organic: pd.DataFrame, probe_fit: pd.DataFrame, pf_u: np.ndarray,
+def apply_correction(ckpt: Checkpoint, organic: pd.DataFrame | OrganicRows, probe_fit: pd.DataFrame, pf_u: np.ndarray,
                      pf_i: np.ndarray, pf_r: np.ndarray, debias: DebiasSettings, scale: Scale,
                      notes: list[str]) -> None:
     """Fit ``ckpt``'s post-hoc correction (recalibration map or per-user correction) on the fitting probe
@@ -161,7 +168,8 @@ def has_correction(debias: DebiasSettings) -> bool:
 
 
 def finish_checkpoint(model: Factoriser, users: IdMap, items: IdMap, settings: Settings,
-                      previous: Checkpoint | None, best_epoch: int, epochs_run: int, organic: pd.DataFrame,
+                      previous: Checkpoint | None, best_epoch: int, epochs_run: int,
+                      organic: pd.DataFrame | OrganicRows,
                       probe_fit: pd.DataFrame, pf_u: np.ndarray, pf_i: np.ndarray, pf_r: np.ndarray,
                       notes: list[str]) -> tuple[Checkpoint, pd.Series]:
     """The trained model as a checkpoint with its post-hoc correction (recalibration map or per-user
@@ -225,7 +233,7 @@ class Training:
         scale, model_cfg, debias = settings.scale, settings.model, settings.debias
         ex = self.exchange = exchange or Exchange()
         self.say = log or (lambda _msg: None)
-        organic = self.organic = check_frame(organic, "organic", scale)
+        organic = check_frame(organic, "organic", scale)
         probe = check_frame(probe, "probe", scale)
         if organic.empty:
             raise EngineInputError("organic ratings: empty, nothing to train on")
@@ -255,22 +263,27 @@ class Training:
         # ---- training examples, this worker's share of them, and the steps of a round ---------------
         tr_u, tr_i, tr_r, tr_w, weighting = training_examples(organic, self.users, self.items, self.all_pf_u,
                                                               self.all_pf_i, self.all_pf_r, scale, debias, self.notes)
+        n_examples = len(tr_r)
+        # The organic ratings as model rows, kept for the per-round refit of the correction (the first
+        # len(organic) examples; in one process the same memory as the training columns below).
+        self.organic_rows = OrganicRows(tr_u[:len(organic)], tr_i[:len(organic)], tr_r[:len(organic)])
         mine = ex.owns(tr_u)
         # Memory: the examples are held for the whole run and gathered once a round, so they are kept
-        # small: int32 indices (embedding lookups take them; gradients and outputs are the same bits) and
-        # no weight column when every weight is 1 (w * x == x exactly, so the loss is unchanged).
+        # small: int32 indices (embedding lookups take them; gradients and outputs are the same bits), the
+        # ratings as float32 (what the loss reads) and no weight column when every weight is 1
+        # (w * x == x exactly, so the loss is unchanged).
         self.T_u, self.T_i = (torch.from_numpy(_int32(x[mine])) for x in (tr_u, tr_i))
-        self.T_r = torch.from_numpy(tr_r[mine]).float()
-        self.T_w = None if bool((tr_w == 1.0).all()) else torch.from_numpy(tr_w[mine]).float()
-        del tr_i, tr_w
+        self.T_r = torch.from_numpy(np.asarray(tr_r[mine], dtype=np.float32))
+        self.T_w = None if tr_w is None or bool((tr_w == 1.0).all()) else torch.from_numpy(tr_w[mine]).float()
+        del tr_i, tr_r, tr_w
         self.self_normalise = weighting == "snips"
         sizes = ex.sizes(len(self.T_r))
-        bs = min(model_cfg.batch_size, len(tr_r))
+        bs = min(model_cfg.batch_size, n_examples)
         # Every worker takes the same number of steps, each over its share of the step's ratings:
         # ceil(share * batch), so every shard is through within n_steps, and one worker takes exactly the
         # single-process batches. The step's global rating count normalises its loss.
-        self.n_steps = -(-max(sizes) // bs) if batch_per_worker else -(-len(tr_r) // bs)
-        local_bs = [-(-s // self.n_steps) if batch_per_worker else -(-s * bs // len(tr_r)) for s in sizes]
+        self.n_steps = -(-max(sizes) // bs) if batch_per_worker else -(-n_examples // bs)
+        local_bs = [-(-s // self.n_steps) if batch_per_worker else -(-s * bs // n_examples) for s in sizes]
         self.step_count = np.zeros(self.n_steps, np.int64)
         for s, b in zip(sizes, local_bs):
             self.step_count += np.clip(s - np.arange(self.n_steps) * b, 0, b)
@@ -281,8 +294,8 @@ class Training:
         self.profiles = ProfileSampler(scale.min, scale.max, debias, len(self.items), self.calibrated)
         if self.profiles.note:
             self.notes.append(self.profiles.note)
-        organic_u = tr_u[:len(organic)]
-        self.active_users = torch.from_numpy(np.unique(organic_u[ex.owns(organic_u)]))
+        organic_u = self.organic_rows.users
+        self.active_users = torch.from_numpy(np.unique(organic_u[ex.owns(organic_u)]).astype(np.int64))
         del tr_u, organic_u
         self.probe_target = (empirical_cdf(torch.from_numpy(self.all_pf_r).float(), self.profiles.t)
                              if self.calibrated and debias.probe_target_weight > 0 and len(self.all_pf_r) else None)
@@ -305,7 +318,7 @@ class Training:
             scale = self.settings.scale
             ckpt = Checkpoint(model=self.model, users=self.users, items=self.items, scale_min=scale.min,
                               scale_max=scale.max, method=self.settings.debias.method)
-            apply_correction(ckpt, self.organic, self.probe_fit, self.all_pf_u, self.all_pf_i, self.all_pf_r,
+            apply_correction(ckpt, self.organic_rows, self.probe_fit, self.all_pf_u, self.all_pf_i, self.all_pf_r,
                              self.settings.debias, scale, [])
             return float(np.abs(ckpt.score_idx(self.all_pf_u, self.all_pf_i) - self.all_pf_r).mean())
         err, count = self.exchange.sum(float(np.abs(self._predict_fit() - self.pf_r).sum()), float(len(self.pf_r)))
@@ -356,6 +369,23 @@ class Training:
                  "adjusted_users": n_adjusted, "calibration": status, "visits": visits, "all_visits": all_visits}
         return adjusted, references, facts
 
+    def _batches(self, perm: torch.Tensor):
+        """The round's mini-batches in step order: ``(k, users [B], items [B], ratings [B], weights [B] or
+        None)``, step ``k`` the rows ``perm[k * batch:(k + 1) * batch]`` of the examples.
+
+        Gathered a chunk of steps at a time (about ``_GATHER_ROWS`` rows), then contiguous slices:
+        gathering each mini-batch from the full columns cost ~0.5 ms per step at 24M ratings (four random
+        reads per rating, one Python call per column and step), and gathering the whole round at once
+        held another copy of every example (12 bytes a rating). The batches are the same either way."""
+        per = max(1, _GATHER_ROWS // max(1, self.batch))
+        for c in range(0, self.n_steps, per):
+            rows = perm[c * self.batch:(c + per) * self.batch]
+            cu, ci, cr = self.T_u[rows], self.T_i[rows], self.T_r[rows]
+            cw = None if self.T_w is None else self.T_w[rows]
+            for k in range(c, min(c + per, self.n_steps)):
+                b = slice((k - c) * self.batch, (k - c + 1) * self.batch)
+                yield k, cu[b], ci[b], cr[b], None if cw is None else cw[b]
+
     def run_round(self, epoch: int) -> bool:
         """Train round ``epoch`` (1-based) and record it in :attr:`rounds`; True when early stopping says stop."""
         t0 = time.perf_counter()
@@ -363,7 +393,9 @@ class Training:
         facts = {"reference_users": 0, "reference_share": float("nan"), "adjusted_users": 0, "calibration": "off"}
         if self.calibrated:
             adjusted, references, facts = self._references()
-        perm = torch.randperm(len(self.T_r), generator=gen)
+        # int32 when it fits: the same permutation (and generator state) as int64, half the memory.
+        perm = torch.randperm(len(self.T_r), generator=gen,
+                              dtype=torch.int32 if len(self.T_r) < 2**31 else torch.int64)
         calib, visits = None, 0
         if facts["calibration"] == "on":
             visits = facts["visits"]
@@ -374,16 +406,9 @@ class Training:
                                     References(references) if len(references) else None,
                                     self.probe_target, debias.probe_target_weight, debias.calibration_weight,
                                     self.n_steps / facts["all_visits"])
-        # One gather per column per round, then contiguous slices: gathering each mini-batch from the
-        # full columns cost ~0.5 ms per step at 24M ratings (four random reads per rating, one Python
-        # call per column and step); the batches are the same.
-        S_u, S_i, S_r = self.T_u[perm], self.T_i[perm], self.T_r[perm]
-        S_w = None if self.T_w is None else self.T_w[perm]
-        del perm
-        steps = [slice(k * self.batch, (k + 1) * self.batch) for k in range(self.n_steps)]
         # Self-normalised IPS divides each step's squared error by the step's weight sum over all workers.
-        weight_sums = ex.sum(*(float(S_w[b].sum()) if S_w is not None else float(S_r[b].numel())
-                               for b in steps)) if self.self_normalise else None
+        weight_sums = ex.sum(*(float(w.sum()) if w is not None else float(r.numel())
+                               for _k, _u, _i, r, w in self._batches(perm))) if self.self_normalise else None
         se_sum, term_sum = 0.0, 0.0
         # Term step j of m takes visits [j * visits // m, (j + 1) * visits // m) and lands on step
         # j * n_steps // m; with m = n_steps that is every step's even share.
@@ -393,11 +418,10 @@ class Training:
         elif self.term_schedule not in ("spread", "packed"):
             raise ValueError(f"term_schedule must be 'spread' or 'packed', got {self.term_schedule!r}")
         term_steps = {j * self.n_steps // m: (j * visits // m, (j + 1) * visits // m) for j in range(m)} if calib else {}
-        for k, b in enumerate(steps):
+        for k, b_u, b_i, b_r, b_w in self._batches(perm):
             span = term_steps.get(k)
             pick = visit_order[span[0]:span[1]] if span else None
-            loss, se, term = step_loss(self.model, S_u[b], S_i[b], S_r[b], None if S_w is None else S_w[b],
-                                       float(self.step_count[k]),
+            loss, se, term = step_loss(self.model, b_u, b_i, b_r, b_w, float(self.step_count[k]),
                                        self.settings.model.weight_decay, pick,
                                        self.profiles.step_items(gen) if pick is not None and len(pick) else None,
                                        calib, se_norm=None if weight_sums is None else weight_sums[k])
@@ -409,6 +433,7 @@ class Training:
             if term is not None:
                 term_sum += float(term)
         se_sum, term_sum = ex.sum(se_sum, term_sum)
+        del perm
         if not all(bool(torch.isfinite(p).all()) for p in self.model.parameters()):
             raise FloatingPointError(f"training diverged at round {epoch} (non-finite weights); "
                                      "lower model.learning_rate or debias.calibration_weight")
@@ -431,7 +456,7 @@ class Training:
             self.notes.append("no probe ratings in the fitting split: no early stopping, ran every epoch")
         best_epoch = self.stopping.restore()
         ckpt, errs = finish_checkpoint(self.model, self.users, self.items, self.settings, self.previous, best_epoch,
-                                       len(self.rounds), self.organic, self.probe_fit, self.all_pf_u, self.all_pf_i,
+                                       len(self.rounds), self.organic_rows, self.probe_fit, self.all_pf_u, self.all_pf_i,
                                        self.all_pf_r, self.notes)
         return FitResult(checkpoint=ckpt, rounds=self.rounds, probe_errors=errs, probe_fit=self.probe_fit,
                          probe_heldout=self.probe_heldout, best_epoch=best_epoch, new_users=self.new_users,

@@ -13,6 +13,7 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
 
 from tasks.engine.checkpoint import Checkpoint
 from tasks.engine.scoring import top_n, users_per_block
@@ -24,7 +25,7 @@ class ScoringShard:
 
     users: np.ndarray       # [U] int64
     exclude_u: np.ndarray   # [E] int32 (int64 beyond 2**31 rows), ascending
-    exclude_i: np.ndarray   # [E] int32 likewise
+    exclude_i: np.ndarray   # [E] int32 likewise; a user's items ascending
 
 
 def plan_shards(ckpt: Checkpoint, window: pd.DataFrame, budget_mb: float, shards: int = 1) -> list[ScoringShard]:
@@ -35,36 +36,54 @@ def plan_shards(ckpt: Checkpoint, window: pd.DataFrame, budget_mb: float, shards
     users = np.sort(np.asarray(pd.unique(window["user_id"]), dtype=object))
     u_idx = ckpt.users.lookup(users)
     u_idx = u_idx[u_idx >= 0]
-    ex_u, ex_i = ckpt.users.lookup(window["user_id"]), ckpt.items.lookup(window["item_id"])
-    ok = (ex_u >= 0) & (ex_i >= 0)
-    if not ok.all():
-        ex_u, ex_i = ex_u[ok], ex_i[ok]
-    del ok
     block = users_per_block(len(ckpt.items), budget_mb * 2**20)
     n_blocks = -(-len(u_idx) // block)
     per_shard = block * max(1, -(-n_blocks // max(1, shards)))
     cuts = list(range(0, len(u_idx), per_shard)) or [0]
-    shard_of = np.full(len(ckpt.users), -1, np.int16 if len(cuts) < 2**15 else np.int64)
-    for k, s in enumerate(cuts):
-        shard_of[u_idx[s:s + per_shard]] = k
-    # Each shard's pairs sorted by user, a user's pairs in window order (stable): the order top_n reads
-    # them in, so it needs no sort and no copy of its own. Memory: the window's pairs are held once, as
-    # int32, next to one int64 ordering (a sort per shard and int64 copies held them about three times).
-    ex_shard = shard_of[ex_u]
-    order = np.lexsort((ex_u, ex_shard))
-    bounds = np.searchsorted(ex_shard[order], np.arange(len(cuts) + 1))
-    del ex_shard
-    out = []
-    for k, s in enumerate(cuts):
-        sel = order[bounds[k]:bounds[k + 1]]
-        out.append(ScoringShard(u_idx[s:s + per_shard], _index32(ex_u, sel), _index32(ex_i, sel)))
-    return out
+    # Each shard's rated pairs sorted by user (the order top_n reads them in, so it neither sorts nor
+    # copies them; a user's items in any order: they are only masked). Users ranked by (shard, index):
+    # one sort of (rank << 32 | item) packed in an int64 orders every shard at once. Memory: about 16
+    # bytes a window rating at the peak (int32 lookups, the packed keys sorted in place); int64 lookups
+    # and an int64 lexsort order held about 40.
+    if len(ckpt.items) >= 2**32:
+        raise ValueError(f"{len(ckpt.items)} items do not fit the 32 bits the scoring plan packs them in")
+    in_shards = _narrow(np.concatenate([np.sort(u_idx[s:s + per_shard]) for s in cuts]) if len(u_idx) else u_idx)
+    rank = np.full(len(ckpt.users), -1, np.int64)
+    rank[in_shards] = np.arange(len(in_shards))
+    ex_u = ckpt.users.lookup(window["user_id"], small=True)
+    ex_i = ckpt.items.lookup(window["item_id"], small=True)
+    ok = (ex_u >= 0) & (ex_i >= 0)
+    if not ok.all():
+        ex_u, ex_i = ex_u[ok], ex_i[ok]
+    del ok
+    ex_i_type = ex_i.dtype            # int32 unless the items need more
+    packed = rank[ex_u]
+    del ex_u
+    keep = packed >= 0                  # pairs of users in no shard (none when the window made the list)
+    if not keep.all():
+        packed, ex_i = packed[keep], ex_i[keep]
+    del keep
+    packed <<= 32
+    packed |= ex_i
+    del ex_i
+    packed.sort()
+    # Shifted and masked straight into 32-bit outputs (casting='unsafe': the values fit), so no int64
+    # temporary of every pair is made next to the packed keys.
+    ranks = np.right_shift(packed, 32, out=np.empty(len(packed), np.int32 if len(in_shards) < 2**31 else np.int64),
+                           casting="unsafe")
+    sizes = [len(u_idx[s:s + per_shard]) for s in cuts]
+    bounds = np.searchsorted(ranks, np.cumsum([0] + sizes))    # shard k: its users' ranks, contiguous
+    ex_u = in_shards[ranks]
+    del ranks
+    ex_i = np.bitwise_and(packed, 0xFFFFFFFF, out=np.empty(len(packed), ex_i_type), casting="unsafe")
+    del packed
+    return [ScoringShard(u_idx[s:s + per_shard], ex_u[bounds[k]:bounds[k + 1]], ex_i[bounds[k]:bounds[k + 1]])
+            for k, s in enumerate(cuts)]
 
 
-def _index32(idx: np.ndarray, sel: np.ndarray) -> np.ndarray:
-    """``idx[sel]`` as int32 when the values fit (checkpoint rows of one shard's rated pairs)."""
-    out = idx[sel]
-    return out.astype(np.int32) if not len(out) or int(out.max()) < 2**31 else out
+def _narrow(idx: np.ndarray) -> np.ndarray:
+    """Checkpoint rows as int32 when they fit (a shard's rated pairs), else int64."""
+    return idx.astype(np.int32) if not len(idx) or int(idx.max()) < 2**31 else idx.astype(np.int64, copy=False)
 
 
 def score_shard(ckpt: Checkpoint, shard: ScoringShard, n: int, budget_mb: float
@@ -76,10 +95,26 @@ def score_shard(ckpt: Checkpoint, shard: ScoringShard, n: int, budget_mb: float
 
 def assemble(ckpt: Checkpoint, parts: list[tuple[np.ndarray, ...]]) -> pd.DataFrame:
     """Frame with schemas.PREDICTIONS columns from the shards' results, in plan order (user then rank)."""
-    u, i, score, rank = (np.concatenate(x) for x in zip(*parts))
-    return pd.DataFrame({"user_id": ckpt.users.ids[u].to_numpy(dtype=object),
-                         "item_id": ckpt.items.ids[i].to_numpy(dtype=object),
-                         "score": score.astype(np.float32), "rank": rank.astype(np.int32)})
+    def joined(k: int) -> np.ndarray:           # one output column at a time: the others are not held meanwhile
+        return np.concatenate([p[k] for p in parts])
+
+    users = _id_column(ckpt.users.ids, joined(0))
+    items = _id_column(ckpt.items.ids, joined(1))
+    return pd.DataFrame({"user_id": users, "item_id": items, "score": joined(2).astype(np.float32, copy=False),
+                         "rank": joined(3).astype(np.int32, copy=False)}, copy=False)
+
+
+def _id_column(ids: pd.Index, rows: np.ndarray):
+    """``ids[rows]`` as the column pandas makes of text (its Arrow-backed ``str`` type under pandas 3).
+
+    Built by an Arrow ``take`` from the distinct ids: a Python string reference per published row, which
+    pandas then turned into Arrow text, peaked at about 200 bytes a row (3.6 GB for 18M rows at 100M
+    ratings). Same column, same Parquet bytes. Where pandas keeps text as objects, objects it is."""
+    text = pd.Series(np.array(["x"], dtype=object)).dtype
+    if not (isinstance(text, pd.StringDtype) and text.storage == "pyarrow"):
+        return ids[rows].to_numpy(dtype=object)
+    distinct = pa.array(ids.to_numpy(dtype=object), pa.large_string())
+    return pd.array(distinct.take(pa.array(rows)), dtype=text)
 
 
 def build_predictions(ckpt: Checkpoint, window: pd.DataFrame, n: int, budget_mb: float) -> pd.DataFrame:

@@ -37,7 +37,8 @@ def test_plain_examples_are_the_organic_ratings_in_order_at_weight_one(run) -> N
     organic, users, items = run[:3]
     (u, i, r, w, weighting), notes = _examples(run, method="plain")
     assert np.array_equal(u, users.lookup(organic["user_id"])) and np.array_equal(i, items.lookup(organic["item_id"]))
-    assert np.array_equal(r, organic["rating"].to_numpy()) and np.all(w == 1.0)
+    assert u.dtype == i.dtype == np.int32                     # window-sized: half of int64's memory
+    assert np.array_equal(r, organic["rating"].to_numpy()) and w is None      # None: every weight is 1
     assert weighting is None and notes == []
 
 
@@ -57,7 +58,7 @@ def test_propensity_weights_for_the_method_or_its_companion(run, method, combine
 
 def test_a_companion_is_ignored_by_methods_that_take_none(run) -> None:
     (_, _, _, w, weighting), _ = _examples(run, method="plain", combine_with="ips")
-    assert weighting is None and np.all(w == 1.0)
+    assert weighting is None and w is None
 
 
 def test_probe_upweighting_appends_the_fitting_probe_at_its_weight(run) -> None:
@@ -75,7 +76,7 @@ def test_weighting_without_probe_ratings_says_so(run) -> None:
     empty = np.empty(0, np.int64)
     *_, w, weighting = training_examples(organic, users, items, empty, empty, np.empty(0), Scale(),
                                          DebiasSettings(method="snips"), notes)
-    assert weighting == "snips" and np.all(w == 1.0)
+    assert weighting == "snips" and w is None
     assert notes == ["snips: no probe ratings to estimate P(r); trained unweighted this time"]
 
 

@@ -9,7 +9,8 @@ import pytest
 import torch
 from synthetic import random_biased_mf
 
-from tasks.engine.skew_model import FEATURE_NAMES, fit_ridge, standardise, user_features, user_mean_prediction
+from tasks.engine.skew_model import (FEATURE_NAMES, OrganicRows, fit_ridge, standardise, user_features,
+                                     user_mean_prediction)
 
 
 def test_ridge_without_penalty_matches_least_squares() -> None:
@@ -64,7 +65,7 @@ def test_user_features_by_hand() -> None:
     u = np.array([0, 0, 0, 1, 1, 2])
     i = np.array([0, 1, 2, 3, 4, 5])
     r = np.array([5.0, 5.0, 4.0, 1.0, 2.0, 3.0])
-    f = pd.DataFrame(user_features(model, u, i, r, 1.0, 5.0, 1.0), columns=FEATURE_NAMES)
+    f = pd.DataFrame(user_features(model, OrganicRows(u, i, r), 1.0, 5.0, 1.0), columns=FEATURE_NAMES)
     item_ref = 3.0 + model.item_bias.weight.detach().double().numpy()[:, 0]
     np.testing.assert_allclose(f["mean_rating"], [14 / 3 - 3, 1.5 - 3, 0.0, 0.0])
     np.testing.assert_allclose(f["mean_vs_item"][:3], [np.mean(r[:3] - item_ref[:3]), np.mean(r[3:5] - item_ref[3:5]),
@@ -75,6 +76,20 @@ def test_user_features_by_hand() -> None:
     np.testing.assert_allclose(f["log_activity"], np.log1p([3, 2, 1, 0]))
     np.testing.assert_array_equal(f["no_organic"], [0, 0, 0, 1])
     np.testing.assert_allclose(f["user_bias"], model.user_bias.weight.detach().double().numpy()[:, 0])
+
+
+def test_features_kept_between_refits_follow_the_model_and_the_user_count() -> None:
+    """Training refits the correction every round on one OrganicRows: what it keeps (the rating-only
+    features) must not carry one model's state into the next model's features."""
+    u, i = np.array([0, 0, 1, 2, 2, 2], np.int32), np.array([0, 1, 1, 2, 3, 0], np.int32)
+    r = np.array([5.0, 4.0, 1.0, 3.0, 3.0, 2.0])
+    kept = OrganicRows(u, i, r)
+    for seed, users in ((1, 4), (2, 4), (3, 6)):
+        model, _ = random_biased_mf(users, 5, 2, 3.0, 0.5, seed=seed)
+        fresh = user_features(model, OrganicRows(u.astype(np.int64), i.astype(np.int64), r), 1.0, 5.0, 1.0)
+        again = user_features(model, kept, 1.0, 5.0, 1.0)
+        assert again.shape == (users, len(FEATURE_NAMES))
+        np.testing.assert_array_equal(again, fresh)      # the same bits, int32 rows or int64
 
 
 def test_standardise_gives_unit_columns_and_zero_for_constant_ones() -> None:

@@ -158,3 +158,25 @@ def test_a_warm_start_keeps_its_base_when_every_round_is_worse() -> None:
     assert mae(*[forced.checkpoint.score(forced.probe_fit["user_id"], forced.probe_fit["item_id"])[0],
                  forced.probe_fit["rating"].to_numpy()]) > mae(
         kept.checkpoint.score(kept.probe_fit["user_id"], kept.probe_fit["item_id"])[0], kept.probe_fit["rating"].to_numpy())
+
+
+@pytest.mark.parametrize("method, combine_with", [("calibrated", "none"), ("snips", "none"), ("per_user", "ips")])
+def test_gathering_a_round_in_chunks_gives_the_same_bits(monkeypatch, method: str, combine_with: str) -> None:
+    """A round's examples are gathered a chunk of steps at a time (memory); the steps, their weights sums
+    (self-normalised IPS) and so the trained weights must be exactly those of gathering the whole round."""
+    import tasks.engine.trainer as trainer
+
+    logs = mnar_logs(n_users=120, n_items=60, per_user=15, probe_users=80, seed=11)
+    settings = Settings().updated({"debias.method": method, "debias.combine_with": combine_with,
+                                   "model.batch_size": 64, "model.max_epochs": 3})
+
+    def weights() -> list[torch.Tensor]:
+        result = fit(logs.organic, logs.probe, settings)
+        return [p.detach().clone() for p in result.checkpoint.model.parameters()] + \
+            [torch.tensor(result.probe_errors.to_numpy())]
+
+    whole = weights()                                      # default chunk: every step of this run at once
+    monkeypatch.setattr(trainer, "_GATHER_ROWS", 150)      # 2 steps a chunk, and a ragged last chunk
+    chunked = weights()
+    assert len(logs.organic) > 20 * 64
+    assert all(torch.equal(a, b) for a, b in zip(whole, chunked))

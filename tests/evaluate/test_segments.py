@@ -70,3 +70,19 @@ def test_judged_segments_leave_out_the_held_out_probe_ratings_they_are_judged_on
     assert judged_segments(cat, heldout, 0.5).astype(str).to_dict() == {"u1": "neutral", "u2": "unknown"}
     # nothing held out: the same as user_skew_segments
     assert judged_segments(window, heldout.iloc[:0], 0.5).equals(user_skew_segments(window, 0.5))
+
+
+def test_the_windows_own_codes_give_what_factorize_gives() -> None:
+    """Users by their window codes (a sorted categorical, some categories without rows, empty windows)
+    equal ``pd.factorize(sort=True)`` (the reference, pandas) codes and index exactly."""
+    from tasks.evaluate.segments import _factorize_sorted
+
+    rng = np.random.default_rng(0)
+    for _ in range(30):
+        cats = sorted({f"m{rng.integers(0, 50)}" for _ in range(30)} | {"zz", "Ärger"})
+        vals = rng.choice(cats[: max(1, len(cats) - int(rng.integers(0, 4)))], int(rng.integers(0, 40)))
+        ids = pd.Series(pd.Categorical(vals, categories=cats))
+        want_codes, want_users = pd.factorize(ids, sort=True)
+        codes, users = _factorize_sorted(ids)
+        assert np.array_equal(codes, want_codes)
+        pd.testing.assert_index_equal(users, pd.Index(want_users), exact=True)

@@ -12,6 +12,7 @@ import shutil
 import subprocess
 import sys
 import tempfile
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
 import pytest
@@ -123,14 +124,24 @@ def _one_line_refusal(out: subprocess.CompletedProcess, what: str) -> str:
     return lines[0]
 
 
+def _cli_all(arg_lists: list[list[str]], cwd: Path) -> list[subprocess.CompletedProcess]:
+    """Every command line at once (independent refusals; a few processes at a time keep the 2-core CI
+    busy while each one starts Python), results in the given order."""
+    with ThreadPoolExecutor(max_workers=4) as pool:
+        return list(pool.map(lambda args: _cli(args, cwd), arg_lists))
+
+
 def test_every_user_error_is_one_line_exit_2_and_no_ledger_row(scene: Path) -> None:
     ws = Workspace.at(scene / "ws")
     rows_before = len(read_ledger(ws))
-    for what, args, must, must_not in CASES:
+    arg_lists = []
+    for _what, args, _must, _must_not in CASES:
         args = [a.format(root=scene) for a in args]
         if "--workspace" not in args and args[0] != "demo":
             args += ["--workspace", str(scene / "ws")]
-        line = _one_line_refusal(_cli(args, scene), what)
+        arg_lists.append(args)
+    for (what, _args, must, must_not), out in zip(CASES, _cli_all(arg_lists, scene)):
+        line = _one_line_refusal(out, what)
         for text in must:
             assert text in line, f"{what}: {text!r} not in {line!r}"
         for text in must_not:
@@ -140,9 +151,9 @@ def test_every_user_error_is_one_line_exit_2_and_no_ledger_row(scene: Path) -> N
 
 
 def test_read_only_commands_create_no_workspace_and_say_what_they_tried(tmp_path: Path) -> None:
-    for what, args, tried in READ_ONLY:
-        args = [a.format(root=tmp_path) for a in args]
-        line = _one_line_refusal(_cli(args, tmp_path), what)
+    outs = _cli_all([[a.format(root=tmp_path) for a in args] for _what, args, _tried in READ_ONLY], tmp_path)
+    for (what, _args, tried), out in zip(READ_ONLY, outs):
+        line = _one_line_refusal(out, what)
         assert "no workspace found" in line and tried in line and "--workspace DIR" in line, line
         assert "tarewise-demo" in line, line                   # the demo's default place is tried too
     assert sorted(p.name for p in tmp_path.iterdir()) == [], "a read-only command created something"

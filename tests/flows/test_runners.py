@@ -9,6 +9,7 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 import pyarrow.parquet as pq
 import pytest
@@ -164,6 +165,24 @@ def test_scoring_shards_are_whole_blocks_and_change_nothing():
     assert len(shards) == 5 and all(len(s.users) % block == 0 for s in shards[:-1])
     assert sum(len(s.users) for s in shards) == logs.organic["user_id"].nunique()
     assert sum(len(s.exclude_u) for s in shards) == len(logs.organic)          # every rated pair, once
+    # Each shard holds exactly its own users' rated pairs, sorted by user (what top_n reads without a
+    # sort); reference: the window's pairs looked up and grouped with pandas.
+    pairs = pd.DataFrame({"u": ckpt.users.lookup(logs.organic["user_id"]), "i": ckpt.items.lookup(logs.organic["item_id"])})
+    for s in shards:
+        assert s.exclude_u.dtype == s.exclude_i.dtype == np.int32 and bool(np.all(np.diff(s.exclude_u) >= 0))
+        got = pd.DataFrame({"u": s.exclude_u, "i": s.exclude_i}).sort_values(["u", "i"], ignore_index=True)
+        want = pairs[pairs["u"].isin(s.users)].astype(np.int32).sort_values(["u", "i"], ignore_index=True)
+        pd.testing.assert_frame_equal(got, want)
     parts = [predictions.score_shard(ckpt, s, 10, budget_mb) for s in reversed(shards)][::-1]
     pd.testing.assert_frame_equal(predictions.assemble(ckpt, parts), whole)
+    # The id columns are built in Arrow from the distinct ids; the frame (and the Parquet file published
+    # from it) is the one a frame of Python strings gives.
+    u, i, score, rank = (np.concatenate(x) for x in zip(*parts))
+    by_objects = pd.DataFrame({"user_id": ckpt.users.ids[u].to_numpy(dtype=object),
+                               "item_id": ckpt.items.ids[i].to_numpy(dtype=object),
+                               "score": score.astype(np.float32), "rank": rank.astype(np.int32)})
+    pd.testing.assert_frame_equal(whole, by_objects)
+    import pyarrow as pa
+    assert pa.Table.from_pandas(whole, preserve_index=False).equals(
+        pa.Table.from_pandas(by_objects, preserve_index=False), check_metadata=True)
     assert list(whole["user_id"].drop_duplicates()) == sorted(logs.organic["user_id"].unique())

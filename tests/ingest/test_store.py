@@ -244,6 +244,11 @@ def test_window_read_on_codes_equals_the_text_read_on_tricky_cases(ws: Workspace
         assert cats == sorted(cats)                         # code order is text order (Python's sort)
         assert set(cats) == set(want[c])
     assert cat["user_id"].astype(str).tolist() == want["user_id"].tolist()
+    # What the night reads: the same rows without event_time (it chose the latest events and is dropped).
+    night = read_window(ws, dates[-1], 4, categorical=True, times=False)
+    assert "event_time" not in night.columns
+    pd.testing.assert_frame_equal(night, cat.drop(columns=["event_time"]))
+    assert list(read_window(ws, "2026-10-01", 1, categorical=True, times=False).columns) == list(night.columns)
 
 
 def test_chunks_that_share_a_row_groups_dictionary_are_merged_before_unifying(tmp_path) -> None:
