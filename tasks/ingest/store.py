@@ -145,9 +145,9 @@ def _repeated_rows(user: np.ndarray, key_of) -> np.ndarray:
     Linear, no sort of every key (that was most of the window read). Small windows: rows whose key
     shares a bucket of a counting array with another row are candidates (every repeat is among them,
     plus a few collisions), and a hash table settles which candidates' keys repeat. Large windows: the
-    rows are grouped by ``user % parts`` (a stable radix sort of small integers), and each group, about
+    rows are grouped by ``user % parts`` (one comparison pass per group), and each group, about
     ``_CHUNK_ROWS`` rows, gets its own hash table, since a repeat never crosses groups. That holds about
-    12 bytes a row plus one group's table, instead of every row's key, index and hash entry at once.
+    3 bytes a row plus one group's rows and table, instead of every row's key, index and hash entry at once.
     """
     n = len(user)
     if 4 * n <= _BUCKETS:       # few rows per bucket: the pre-filter leaves few candidates
@@ -257,9 +257,9 @@ def empty_window() -> pd.DataFrame:
 def read_window_table(ws: Workspace, run_date: str, days: int, times: bool = True) -> pa.Table:
     """The window as Arrow: ratings of the stored dates in (run_date - days, run_date], latest event per key.
 
-    Columns: user_id, item_id and source as dictionary-encoded text (int32 codes into one sorted
-    dictionary per column, so code order is text order), rating (float64), event_time, dt (the stored
-    date, dictionary-encoded). Rows in date order, then stored order. The ids stay codes all the way:
+    Columns: user_id, item_id and source as dictionary-encoded text (codes into one sorted dictionary per
+    column, so code order is text order: int32 for the ids, int8 for the source), rating (float64),
+    event_time, dt (the stored date, dictionary-encoded, int8 codes below 128 dates). Rows in date order, then stored order. The ids stay codes all the way:
     Parquet's own dictionary pages are read as such (``read_dictionary``), the days' dictionaries are
     unified, and the latest event per key is found on the integer codes.
     Stores written before this read (plain text columns, no other layout) are read the same way.
