@@ -260,8 +260,9 @@ def read_window_table(ws: Workspace, run_date: str, days: int, times: bool = Tru
     Columns: user_id, item_id and source as dictionary-encoded text (codes into one sorted dictionary per
     column, so code order is text order: int32 for the ids, int8 for the source), rating (float64),
     event_time, dt (the stored date, dictionary-encoded, int8 codes below 128 dates). Rows in date order,
-    then stored order. The ids stay codes all the way: Parquet's own dictionary pages are read as such (``read_dictionary``), the days' dictionaries are
-    unified, and the latest event per key is found on the integer codes.
+    then stored order. The ids stay codes all the way: Parquet's own dictionary pages are read as such
+    (``read_dictionary``), the days' dictionaries are unified, and the latest event per key is found on
+    the integer codes.
     Stores written before this read (plain text columns, no other layout) are read the same way.
     ``times=False`` leaves ``event_time`` out once it has chosen the latest events (the night reads no
     time: 8 bytes a window rating less in every stage).
