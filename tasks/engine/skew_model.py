@@ -69,9 +69,6 @@ class OrganicRows:
         return cls(user_map.lookup(organic["user_id"], small=True), item_map.lookup(organic["item_id"], small=True),
                    organic["rating"].to_numpy(float))
 
-    def __len__(self) -> int:
-        return len(self.ratings)
-
     def fixed_features(self, n_users: int, scale_min: float, scale_max: float, step: float) -> np.ndarray:
         """Features 0, 2, 3, 4, 5 and 8 and the per-user counts ``[n_users, 7]`` (cached)."""
         key = (scale_min, scale_max, step)

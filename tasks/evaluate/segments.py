@@ -68,12 +68,9 @@ def _factorize_sorted(ids: pd.Series) -> tuple[np.ndarray, pd.Index]:
     with sorted categories, :func:`tasks.ingest.store.read_window`) keep their own int32 codes, renumbered
     only when some category has no row: the same codes and index, half the memory of factorize's int64
     codes and without hashing every row."""
-    if not (isinstance(ids.dtype, pd.CategoricalDtype) and ids.cat.categories.is_monotonic_increasing
-            and not ids.dtype.ordered):
-        codes, users = pd.factorize(ids, sort=True)
-        return codes, pd.Index(users)
-    codes = ids.cat.codes.to_numpy()
-    if len(codes) and codes.min() < 0:       # missing ids: factorize's own rules
+    codes = ids.cat.codes.to_numpy() if isinstance(ids.dtype, pd.CategoricalDtype) else None
+    if (codes is None or ids.dtype.ordered or not ids.cat.categories.is_monotonic_increasing
+            or (len(codes) and codes.min() < 0)):          # missing ids follow factorize's own rules
         codes, users = pd.factorize(ids, sort=True)
         return codes, pd.Index(users)
     seen = np.bincount(codes, minlength=len(ids.cat.categories)) > 0
