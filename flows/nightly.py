@@ -127,6 +127,7 @@ def _work(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool,
             base_id, base, base_shadow = steps.with_io_retries(steps.load_base, cfg)(cfg, run_date, base_from, cold)
         with night.stage("train"):
             trained = steps.train(cfg, window, base, base_shadow)
+        allocators.trim()    # training's many small freed tensors: out of the heap before the next peaks
         cand, shadow = trained.candidate, trained.shadow.checkpoint if trained.shadow else None
         with night.stage("evaluate"):
             # segments from the window without the held-out probe rows they are judged on (segments.py)
@@ -143,6 +144,7 @@ def _work(cfg: Config, ws: Workspace, run_date: str, kind: str, make_live: bool,
                                      base_id=base_id, version_id=version_id)
         night.gate = decide(night.evaluation, cfg.gate, measured.alerts_for_gate())
         log.info("gate: %s (%s)", "promote" if night.gate.promote else "hold", night.gate.reason)
+        allocators.trim()
         with night.stage("predict"):
             preds = _predict(cfg, cand.checkpoint, window)
         with night.stage("publish"):

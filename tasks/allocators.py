@@ -12,6 +12,9 @@ Measured on the 10M-rating benchmark window (bench/BENCHMARKS.md, "memory per ra
 peaked at 132 bytes a window rating with both as they come, 94 with the system pool and a fixed 1 MB
 threshold. The numbers computed do not change, only where freed memory goes.
 
+Blocks below the threshold still come from the heap (a training round frees thousands of small
+tensors); :func:`trim` gives the heap's free pages back between a night's stages.
+
 An operator's own choice wins: ``ARROW_DEFAULT_MEMORY_POOL`` or ``MALLOC_MMAP_THRESHOLD_`` in the
 environment leaves that allocator as configured. Elsewhere than glibc (musl, macOS) the malloc part is
 skipped.
@@ -42,16 +45,35 @@ def return_freed_memory() -> dict[str, str]:
     return facts
 
 
+def trim() -> bool:
+    """Give the heap's free pages back to the system now (glibc's ``malloc_trim(0)``); True when it
+    released some. Called between a night's stages: training frees many small tensors (below the mmap
+    threshold, so heap-allocated), and without a trim their pages stay in the process through scoring,
+    the night's peak. A no-op (False) elsewhere than glibc."""
+    libc = _glibc()
+    if libc is None:
+        return False
+    libc.malloc_trim.argtypes, libc.malloc_trim.restype = [ctypes.c_size_t], ctypes.c_int
+    return bool(libc.malloc_trim(0))
+
+
+def _glibc():
+    """The C library when it is glibc (whose mallopt/malloc_trim this module calls), else None."""
+    try:
+        libc = ctypes.CDLL(ctypes.util.find_library("c"))
+        libc.gnu_get_libc_version          # glibc only: mallopt's parameter numbers are glibc's
+    except (OSError, AttributeError, TypeError):
+        return None
+    return libc
+
+
 def _fix_mmap_threshold() -> str:
     if "MALLOC_MMAP_THRESHOLD_" in os.environ:
         return f"mmap threshold {os.environ['MALLOC_MMAP_THRESHOLD_']} (MALLOC_MMAP_THRESHOLD_)"
-    name = ctypes.util.find_library("c")
-    try:
-        libc = ctypes.CDLL(name)
-        mallopt = libc.mallopt
-        libc.gnu_get_libc_version          # glibc only: mallopt's parameter numbers are glibc's
-    except (OSError, AttributeError, TypeError):
+    libc = _glibc()
+    if libc is None:
         return "as it comes (not glibc)"
+    mallopt = libc.mallopt
     mallopt.argtypes, mallopt.restype = [ctypes.c_int, ctypes.c_int], ctypes.c_int
     if mallopt(_M_MMAP_THRESHOLD, MMAP_THRESHOLD) != 1:
         return "as it comes (mallopt refused)"

@@ -6,6 +6,8 @@ import json
 import subprocess
 import sys
 
+import pytest
+
 from conftest import REPO
 
 PROBE = """
@@ -20,8 +22,12 @@ print(json.dumps({"facts": facts, "pool": pa.default_memory_pool().backend_name,
 
 
 def _run(env: dict) -> dict:
-    out = subprocess.run([sys.executable, "-c", PROBE], capture_output=True, text=True, cwd=REPO,
-                         env={"PATH": "/usr/bin:/bin", "PYTHONPATH": str(REPO), **env}, check=True)
+    return _run_code(PROBE, env)
+
+
+def _run_code(code: str, env: dict | None = None) -> dict:
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=REPO,
+                         env={"PATH": "/usr/bin:/bin", "PYTHONPATH": str(REPO), **(env or {})}, check=True)
     return json.loads(out.stdout.strip().splitlines()[-1])
 
 
@@ -37,3 +43,32 @@ def test_the_operators_environment_wins() -> None:
     got = _run({"ARROW_DEFAULT_MEMORY_POOL": "jemalloc", "MALLOC_MMAP_THRESHOLD_": "131072"})
     assert got["pool"] == "jemalloc" and got["facts"]["arrow"].endswith("(ARROW_DEFAULT_MEMORY_POOL)")
     assert got["facts"]["malloc"] == "mmap threshold 131072 (MALLOC_MMAP_THRESHOLD_)"
+
+
+TRIM = """
+import json, os
+import numpy as np
+from tasks.allocators import return_freed_memory, trim
+return_freed_memory()
+def rss_mb():
+    with open("/proc/self/statm") as f:
+        return int(f.read().split()[1]) * os.sysconf("SC_PAGE_SIZE") / 2**20
+start = rss_mb()
+small = [np.ones(64 * 1024 // 8) for _ in range(4000)]     # 250 MB of 64 kB blocks: below the mmap threshold
+keep = np.ones(1024)                                       # allocated last: holds the heap's top in place
+del small
+before = rss_mb()
+released = trim()
+print(json.dumps({"start": start, "before": before, "after": rss_mb(), "released": released}))
+"""
+
+
+def test_trim_hands_the_heaps_free_pages_back() -> None:
+    if not sys.platform.startswith("linux"):
+        pytest.skip("reads /proc/self/statm")
+    got = _run_code(TRIM)
+    held = got["before"] - got["start"]            # freed small blocks the heap still held
+    if not got["released"] or held < 20:
+        pytest.skip(f"not glibc (trim is a no-op there) or the frees gave the memory back: {got}")
+    # Trimming gives back at least three quarters of what the heap held after the frees.
+    assert got["after"] - got["start"] < 0.25 * held, got
