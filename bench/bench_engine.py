@@ -9,6 +9,7 @@ peak memory (``ru_maxrss``) belongs to that case alone. Prints a markdown table 
     python bench/bench_engine.py --sizes 100k,1M    # a subset
     python bench/bench_engine.py --epochs 3         # average over more epochs
     nice -n 10 python bench/bench_engine.py --one-process --sizes 1M,10M --repeats 5 --packed
+    nice -n 10 python bench/bench_engine.py --one-process --sizes 1M,10M --repeats 5 --free-term
     nice -n 10 python bench/bench_engine.py --to-convergence 2 --sizes 100k,1M
 
 Goals (from the engine issue): calibrated epoch <= 1.5x plain epoch at 1M ratings; peak memory bounded by
@@ -237,11 +238,20 @@ def heldout_facts(training, eval_users: int = 5000, seed: int = 12345) -> dict:
     return {"heldout_mae": mae, "term": term, "heldout_n": len(held)}
 
 
-def one_process(size: str, repeats: int, overrides: dict, packed: bool) -> dict:
-    """Plain and calibrated rounds in turn in this process on the same frames; returns medians, ratios, load."""
+def _no_term_arithmetic(pred, *_args, **_kwargs):
+    """Stands in for the term in the ``--free-term`` case: zero, with a zero gradient into the block."""
+    return (pred * 0.0).sum(1)
+
+
+def one_process(size: str, repeats: int, overrides: dict, packed: bool, free_term: bool = False) -> dict:
+    """Plain and calibrated rounds in turn in this process on the same frames; returns medians, ratios, load.
+    ``free_term``: also a calibrated model whose term costs nothing (:func:`_no_term_arithmetic`): it
+    still reads the block of predictions and updates its members' and titles' rows, so its ratio is the
+    floor for any exact speed-up of the term itself."""
     import torch
 
     from tasks.config import Config
+    from tasks.engine import trainer
     from tasks.engine.trainer import Training
     from tasks.train.settings import engine_settings
 
@@ -252,21 +262,32 @@ def one_process(size: str, repeats: int, overrides: dict, packed: bool) -> dict:
     cases = {"plain": ("plain", "spread"), "calibrated": ("calibrated", "spread")}
     if packed:
         cases["calibrated packed"] = ("calibrated", "packed")
+    if free_term:
+        cases["calibrated, term free (a floor)"] = ("calibrated", "spread")
     trainings = {}
     for name, (method, schedule) in cases.items():
         cfg = Config().updated({"debias.method": method, "model.max_epochs": repeats + 1,
                                 "model.patience": repeats + 2, **overrides})
         trainings[name] = Training(organic, probe, engine_settings(cfg))
         trainings[name].term_schedule = schedule
+    real_term = trainer.profile_term_per_user
+
+    def round_of(name: str, epoch: int) -> None:
+        trainer.profile_term_per_user = _no_term_arithmetic if name.endswith("(a floor)") else real_term
+        try:
+            trainings[name].run_round(epoch)
+        finally:
+            trainer.profile_term_per_user = real_term
+
     load_start = os.getloadavg()
-    for tr in trainings.values():          # warm-up: first touches of every table, allocator growth
-        tr.run_round(1)
+    for name in trainings:                 # warm-up: first touches of every table, allocator growth
+        round_of(name, 1)
     wall = {name: [] for name in trainings}
     cpu = {name: [] for name in trainings}
     for rep in range(repeats):
-        for name, tr in trainings.items():
+        for name in trainings:
             w0, c0 = time.perf_counter(), time.process_time()
-            tr.run_round(rep + 2)
+            round_of(name, rep + 2)
             wall[name].append(time.perf_counter() - w0)
             cpu[name].append(time.process_time() - c0)
         print(f"{size} repeat {rep + 1}: " + ", ".join(f"{n} {wall[n][-1]:.2f} s" for n in trainings)
@@ -348,6 +369,8 @@ def main() -> None:
                     "calibrated packed to early stopping on SEEDS seeds and print held-out facts (no timing ratio)")
     ap.add_argument("--packed", action="store_true", help="--one-process: also a calibrated model with the "
                     "packed term schedule (Training.term_schedule)")
+    ap.add_argument("--free-term", action="store_true", help="--one-process: also a calibrated model whose term "
+                    "costs nothing (the floor for exact speed-ups of the term)")
     ap.add_argument("--case", help=argparse.SUPPRESS)   # internal: run one case, print JSON
     ap.add_argument("--data", help=argparse.SUPPRESS)   # internal: folder with the case's Parquet logs
     args = ap.parse_args()
@@ -369,7 +392,7 @@ def main() -> None:
         out.write_text(text)
         return
     if args.one_process:
-        results = [one_process(size, args.repeats, overrides, args.packed) for size in sizes]
+        results = [one_process(size, args.repeats, overrides, args.packed, args.free_term) for size in sizes]
         text = ("# Engine benchmark, one process\n\nSynthetic selection-skewed logs (invented numbers); plain and "
                 f"calibrated rounds in turn in one process, 1 torch thread, {args.repeats} timed rounds per case "
                 f"after one warm-up round each, {platform.processor() or platform.machine()}, {os.cpu_count()} cores"
