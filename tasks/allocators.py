@@ -48,8 +48,9 @@ def return_freed_memory() -> dict[str, str]:
 def trim() -> bool:
     """Give the heap's free pages back to the system now (glibc's ``malloc_trim(0)``); True when it
     released some. Called between a night's stages: training frees many small tensors (below the mmap
-    threshold, so heap-allocated), and without a trim their pages stay in the process through scoring,
-    the night's peak. A no-op (False) elsewhere than glibc."""
+    threshold, so heap-allocated) whose pages would otherwise stay in the process through scoring, the
+    night's peak. Measured at 10M ratings: about 15 MB off that peak (2 bytes a window rating, within
+    the spread of repeats; BENCHMARKS.md, "Fourth pass"). A no-op (False) elsewhere than glibc."""
     libc = _glibc()
     if libc is None:
         return False
