@@ -24,6 +24,7 @@ from __future__ import annotations
 
 import ctypes
 import ctypes.util
+import functools
 import os
 
 import pyarrow as pa
@@ -58,8 +59,10 @@ def trim() -> bool:
     return bool(libc.malloc_trim(0))
 
 
+@functools.cache
 def _glibc():
-    """The C library when it is glibc (whose mallopt/malloc_trim this module calls), else None."""
+    """The C library when it is glibc (whose mallopt/malloc_trim this module calls), else None; looked
+    up once per process (a night trims more than once)."""
     try:
         libc = ctypes.CDLL(ctypes.util.find_library("c"))
         libc.gnu_get_libc_version          # glibc only: mallopt's parameter numbers are glibc's
